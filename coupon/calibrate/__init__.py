@@ -1,0 +1,1 @@
+"""Calibration: pixels to millimetres, colour correction, indicator colour to pH, profiles."""

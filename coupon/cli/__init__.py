@@ -1,0 +1,1 @@
+"""The command line: a thin layer that reads files, prints and sets exit codes."""

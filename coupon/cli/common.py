@@ -1,0 +1,98 @@
+"""Shared command-line pieces: error handling, option parsers, messages."""
+
+from __future__ import annotations
+
+import sys
+import traceback
+import warnings
+from pathlib import Path
+
+import click
+
+from coupon.errors import CouponError
+
+#: Exit codes: 0 all inputs ok, 1 some inputs failed, 2 usage error (click's own).
+EXIT_OK, EXIT_FAILED, EXIT_USAGE = 0, 1, 2
+
+
+class Failed(click.ClickException):
+    """Exit 1 with a one-line message (click prints 'Error: ...')."""
+
+    exit_code = EXIT_FAILED
+
+    def show(self, file=None):
+        click.echo(f"error: {self.format_message()}", err=True)
+
+
+def is_debug() -> bool:
+    ctx = click.get_current_context(silent=True)
+    while ctx is not None:
+        if ctx.obj and isinstance(ctx.obj, dict) and "debug" in ctx.obj:
+            return bool(ctx.obj["debug"])
+        ctx = ctx.parent
+    return False
+
+
+def fail(exc: BaseException) -> "Failed":
+    """Turn an exception into a one-line exit-1 error (with traceback under --debug)."""
+    if is_debug():
+        traceback.print_exception(exc, file=sys.stderr)
+    if isinstance(exc, CouponError):
+        return Failed(str(exc))
+    return Failed(f"unexpected {type(exc).__name__}: {exc} (rerun with --debug for the traceback)")
+
+
+def report_failure(message: str, trace: str | None = None) -> None:
+    """Print one failed batch item (the batch goes on)."""
+    click.echo(f"error: {message}", err=True)
+    if trace and is_debug():
+        click.echo(trace, err=True)
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    click.echo(f"warning: {message}", err=True)
+
+
+def install_warning_printer() -> None:
+    """Warnings become one 'warning: ...' line on stderr (no file/line noise)."""
+    warnings.showwarning = _show_warning
+
+
+# -- option parsers ---------------------------------------------------------
+
+def parse_numbers(text: str, count: int | None, what: str, param_hint: str) -> list[float]:
+    try:
+        vals = [float(v) for v in text.replace(";", ",").split(",") if v.strip()]
+    except ValueError:
+        raise click.BadParameter(f"{text!r} is not a comma-separated list of numbers ({what})",
+                                 param_hint=param_hint) from None
+    if count is not None and len(vals) != count:
+        raise click.BadParameter(f"expected {count} numbers ({what}), got {len(vals)} in {text!r}",
+                                 param_hint=param_hint)
+    return vals
+
+
+def parse_size(text: str, param_hint: str, integer: bool = False) -> tuple[float, float]:
+    """Parse 'WxH' (e.g. 9x7 or 75x150)."""
+    parts = text.lower().replace("*", "x").split("x")
+    try:
+        if len(parts) != 2:
+            raise ValueError
+        a, b = (int(p) if integer else float(p) for p in parts)
+    except ValueError:
+        kind = "whole numbers" if integer else "numbers"
+        raise click.BadParameter(f"{text!r} is not of the form WxH with {kind} (e.g. 9x7)",
+                                 param_hint=param_hint) from None
+    if a <= 0 or b <= 0:
+        raise click.BadParameter(f"{text!r}: both sizes must be positive", param_hint=param_hint)
+    return a, b
+
+
+def out_dir_option(f):
+    return click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
+                        help="Output folder (created if missing).")(f)
+
+
+def profile_option(required: bool = False, help_text: str = "Calibration profile (JSON).", exists=True):
+    return click.option("--profile", "profile_path", required=required,
+                        type=click.Path(dir_okay=False, path_type=Path, exists=False), help=help_text)

@@ -1,0 +1,66 @@
+"""``coupon`` command group: global options and the list of commands."""
+
+from __future__ import annotations
+
+import importlib
+import sys
+
+import click
+
+from coupon import __version__
+from coupon.cli.common import install_warning_printer
+
+#: (module, attribute) of every command; each job's command lives in its own module.
+COMMANDS = [
+    ("coupon.cli.calibrate", "calibrate"),
+    ("coupon.cli.phmap", "phmap"),
+    ("coupon.cli.demo", "demo"),
+]
+
+HELP = """Calibrated, traceable numbers from photos of corrosion tests.
+
+\b
+Typical order:
+  coupon calibrate target sheet        print a scale and grey target
+  coupon calibrate scale ...           pixels to millimetres
+  coupon calibrate colour ...          white balance and colour matrix
+  coupon calibrate indicator ...       indicator colour to pH from buffer drops
+  coupon phmap IMAGES --profile P ...  pH per pixel
+
+Exit codes: 0 all inputs processed, 1 some inputs failed, 2 usage error.
+Ratings support, and do not replace, a qualified inspector and the governing
+standard or specification.
+"""
+
+
+@click.group(help=HELP, context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
+@click.version_option(__version__, "--version", prog_name="coupon")
+@click.option("--debug", is_flag=True, help="Show full tracebacks for errors.")
+@click.pass_context
+def cli(ctx: click.Context, debug: bool) -> None:
+    ctx.ensure_object(dict)
+    ctx.obj["debug"] = debug
+    install_warning_printer()
+
+
+for _module, _attr in COMMANDS:
+    cli.add_command(getattr(importlib.import_module(_module), _attr))
+
+
+def main() -> None:
+    """Console entry point: no traceback for any error unless --debug."""
+    try:
+        cli.main(prog_name="coupon", standalone_mode=True)
+    except KeyboardInterrupt:
+        click.echo("interrupted", err=True)
+        sys.exit(130)
+    except Exception as exc:  # noqa: BLE001 - the last line of defence against tracebacks
+        if "--debug" in sys.argv[1:]:
+            raise
+        click.echo(f"error: unexpected {type(exc).__name__}: {exc} (rerun with --debug for the traceback)",
+                   err=True)
+        sys.exit(1)
+
+
+if __name__ == "__main__":
+    main()

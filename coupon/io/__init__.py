@@ -1,0 +1,1 @@
+"""Reading inputs and writing outputs: images, tables, atomic files, batches."""

@@ -1,0 +1,113 @@
+"""Atomic output files: a reader never sees a half-written file.
+
+Each writer writes to a temporary file in the destination folder and renames it
+into place with :func:`os.replace`, which is atomic on POSIX and Windows.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Iterator
+
+import numpy as np
+import pandas as pd
+
+
+@contextmanager
+def atomic_path(dest: str | os.PathLike, suffix: str | None = None) -> Iterator[Path]:
+    """Yield a temporary path beside ``dest``; on success rename it to ``dest``.
+
+    The temporary name keeps the destination's suffix so that writers that pick a
+    format from the file name (OpenCV, matplotlib, tifffile) still do so.
+    """
+    dest = Path(dest)
+    dest.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{dest.stem}.", suffix=suffix or dest.suffix, dir=dest.parent)
+    os.close(fd)
+    tmp_path = Path(tmp)
+    try:
+        yield tmp_path
+        os.replace(tmp_path, dest)
+    finally:
+        if tmp_path.exists():
+            tmp_path.unlink()
+
+
+def write_text(dest: str | os.PathLike, text: str) -> Path:
+    with atomic_path(dest) as tmp:
+        tmp.write_text(text, encoding="utf-8")
+    return Path(dest)
+
+
+def _json_default(obj):
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, Path):
+        return str(obj)
+    raise TypeError(f"cannot write {type(obj).__name__} to JSON")
+
+
+def to_json_text(obj) -> str:
+    """JSON text with NaN written as null (JSON has no NaN)."""
+
+    def clean(o):
+        if isinstance(o, float) and not np.isfinite(o):
+            return None
+        if isinstance(o, np.floating) and not np.isfinite(o):
+            return None
+        if isinstance(o, dict):
+            return {k: clean(v) for k, v in o.items()}
+        if isinstance(o, (list, tuple)):
+            return [clean(v) for v in o]
+        if isinstance(o, np.ndarray):
+            return clean(o.tolist())
+        return o
+
+    return json.dumps(clean(obj), indent=2, default=_json_default, allow_nan=False) + "\n"
+
+
+def write_json(dest: str | os.PathLike, obj) -> Path:
+    return write_text(dest, to_json_text(obj))
+
+
+def write_csv(dest: str | os.PathLike, table: pd.DataFrame) -> Path:
+    with atomic_path(dest) as tmp:
+        table.to_csv(tmp, index=False, float_format="%.6g")
+    return Path(dest)
+
+
+def write_image(dest: str | os.PathLike, rgb_u8: np.ndarray) -> Path:
+    """Write an (M, N, 3) uint8 RGB picture (PNG or JPEG by suffix)."""
+    import cv2
+
+    with atomic_path(dest) as tmp:
+        if not cv2.imwrite(str(tmp), cv2.cvtColor(np.ascontiguousarray(rgb_u8), cv2.COLOR_RGB2BGR)):
+            raise OSError(f"{dest}: could not write image")
+    return Path(dest)
+
+
+def write_float_tiff(dest: str | os.PathLike, values: np.ndarray) -> Path:
+    """Write an (M, N) float32 array as a single-channel float TIFF (NaN preserved)."""
+    import cv2
+
+    arr = np.ascontiguousarray(values, dtype=np.float32)
+    with atomic_path(dest) as tmp:
+        if not cv2.imwrite(str(tmp), arr):
+            raise OSError(f"{dest}: could not write float TIFF")
+    return Path(dest)
+
+
+def save_figure(fig, dest: str | os.PathLike, **kwargs) -> Path:
+    """Save a matplotlib figure atomically and close it."""
+    import matplotlib.pyplot as plt
+
+    with atomic_path(dest) as tmp:
+        fig.savefig(tmp, **kwargs)
+    plt.close(fig)
+    return Path(dest)

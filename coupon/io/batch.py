@@ -1,0 +1,123 @@
+"""Batches: many inputs, one failing file never stops the rest; reruns resume.
+
+:func:`run_batch` maps a top-level function over inputs in a process pool
+(or in-process for one worker), shows a progress bar on stderr and yields one
+:class:`ItemOutcome` per input in input order.  A :class:`CouponError` becomes
+the outcome's one-line ``error``; any other exception too, marked unexpected
+(with the traceback text kept for ``--debug``).
+
+:class:`ResumeLedger` records, per output folder and command, which input
+(by path and SHA-256 of its bytes) was processed with which settings, so a
+rerun skips finished inputs unless forced.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import sys
+import traceback
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Callable, Iterable, Iterator
+
+import click
+
+from coupon.errors import CouponError
+from coupon.io.atomic import to_json_text, write_text
+
+
+@dataclass
+class ItemOutcome:
+    item: Any
+    result: Any = None
+    error: str | None = None
+    trace: str | None = None
+
+    @property
+    def ok(self) -> bool:
+        return self.error is None
+
+
+def _call(func: Callable, item: Any) -> ItemOutcome:
+    try:
+        return ItemOutcome(item, func(item))
+    except CouponError as exc:
+        return ItemOutcome(item, error=str(exc), trace=traceback.format_exc())
+    except MemoryError:
+        return ItemOutcome(item, error=f"{item}: out of memory (try --workers 1 or a smaller image)")
+    except Exception as exc:  # noqa: BLE001 - a batch records every failure and goes on
+        return ItemOutcome(
+            item, error=f"{item}: unexpected error {type(exc).__name__}: {exc}", trace=traceback.format_exc()
+        )
+
+
+def run_batch(
+    items: Iterable[Any], func: Callable[[Any], Any], *, workers: int = 1, label: str = "Processing",
+    progress: bool = True,
+) -> Iterator[ItemOutcome]:
+    """Apply ``func`` to each item; yield outcomes in input order as they complete."""
+    items = list(items)
+    show = progress and len(items) > 1
+    bar = click.progressbar(length=len(items), label=label, file=sys.stderr) if show else None
+    try:
+        if bar is not None:
+            bar.__enter__()
+        if workers <= 1 or len(items) <= 1:
+            for it in items:
+                out = _call(func, it)
+                if bar is not None:
+                    bar.update(1)
+                yield out
+        else:
+            with ProcessPoolExecutor(max_workers=workers) as pool:
+                futures = [pool.submit(_call, func, it) for it in items]
+                for fut in futures:
+                    out = fut.result()
+                    if bar is not None:
+                        bar.update(1)
+                    yield out
+    finally:
+        if bar is not None:
+            bar.__exit__(None, None, None)
+
+
+def settings_hash(settings: dict) -> str:
+    """Stable short hash of a settings dict (what would change the numbers)."""
+    text = json.dumps(settings, sort_keys=True, default=str)
+    return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+class ResumeLedger:
+    """Which inputs a command has already processed into an output folder.
+
+    Stored as ``DIR/.coupon/<command>_done.json``: input path -> {sha256,
+    settings, outputs, status}.  An entry counts as done when the input's bytes,
+    the settings and all its recorded output files are unchanged.
+    """
+
+    def __init__(self, out_dir: str | os.PathLike, command: str):
+        self.path = Path(out_dir) / ".coupon" / f"{command}_done.json"
+        try:
+            self.entries: dict[str, dict] = json.loads(self.path.read_text()) if self.path.exists() else {}
+        except (json.JSONDecodeError, OSError):
+            self.entries = {}
+
+    @staticmethod
+    def key(path: str | os.PathLike) -> str:
+        return str(Path(path).resolve())
+
+    def is_done(self, path: str | os.PathLike, sha256: str, settings: str) -> bool:
+        e = self.entries.get(self.key(path))
+        return bool(
+            e and e.get("sha256") == sha256 and e.get("settings") == settings and e.get("status") == "ok"
+            and all(Path(o).exists() for o in e.get("outputs", []))
+        )
+
+    def record(self, path, sha256: str, settings: str, outputs: list, status: str = "ok") -> None:
+        self.entries[self.key(path)] = {
+            "sha256": sha256, "settings": settings, "outputs": [str(o) for o in outputs], "status": status,
+        }
+        write_text(self.path, to_json_text(self.entries))

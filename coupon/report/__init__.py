@@ -1,0 +1,1 @@
+"""Outputs people read: figures, overlays, tables and reports."""
