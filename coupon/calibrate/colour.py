@@ -180,7 +180,8 @@ def fit_colour_matrix(
     src = cs.srgb_to_linear(measured) * g
     dst = cs.xyz_to_linear(cs.lab_to_xyz(ref_lab))
     design = np.column_stack([src, np.ones(len(src))]) if kind == "affine" else src
-    if np.linalg.matrix_rank(design) < design.shape[1]:
+    sv = np.linalg.svd(design, compute_uv=False)
+    if sv.min() < 0.005 * sv.max():  # near-collinear: greys only, or one hue
         raise CalibrationError("the patches do not span enough colours (add coloured patches, not only greys)")
     sol, *_ = np.linalg.lstsq(design, dst, rcond=None)
     matrix = sol.T

@@ -13,6 +13,12 @@ NaN, not to a made-up pH.  The distance weights L* by ``l_weight`` (default
 pH is only defined within the calibrated range: colours past the ends map to
 the end pH if they are close to it, NaN otherwise.
 
+Limits: colour alone cannot tell every rust from the indicator.  Dark brown
+and black rust, grey metal and glare fall far from the path, but an
+orange-brown rust (sienna-like) can lie within the tolerance of the acid end
+(pH 3-4), where the indicator itself is orange-red.  The droplet analysis
+therefore separates rust by opacity and darkness as well.
+
 Speed: an image is quantised to 8 bits per channel, its distinct colours
 (typically 1e4 to 5e5) are projected with a k-d tree, and a 2^24-entry table
 maps every pixel back; no per-pixel Python loop.
@@ -251,7 +257,7 @@ class BufferDrop:
     n_px: int
 
 
-def detect_drops(rgb: np.ndarray, expected: int | None = None, min_area_frac: float = 0.2) -> list[np.ndarray]:
+def detect_drops(rgb: np.ndarray, min_area_frac: float = 0.2) -> list[np.ndarray]:
     """Find coloured drops (or wells) on a plainer background; masks in reading order.
 
     A pixel belongs to a drop when its weighted CIELAB colour (lightly
@@ -275,8 +281,6 @@ def detect_drops(rgb: np.ndarray, expected: int | None = None, min_area_frac: fl
         return []
     areas = ndi.sum_labels(np.ones_like(labels), labels, index=np.arange(1, n + 1))
     big = np.flatnonzero(areas >= min_area_frac * np.median(areas[areas >= 0.2 * areas.max()])) + 1
-    if expected is not None and len(big) > expected:
-        big = big[np.argsort(areas[big - 1])[::-1][:expected]]
     centres = np.array(ndi.center_of_mass(mask, labels, big)).reshape(-1, 2)  # (row, col) in small
     radius = np.sqrt(areas[big - 1] / np.pi)
     order = _reading_order(centres, np.median(radius))
@@ -361,7 +365,7 @@ def fit_from_drops(
     so a noisy photo still maps its own buffers.
     """
     n = len(ph_values)
-    masks = detect_drops(rgb, expected=n)
+    masks = detect_drops(rgb)
     if len(masks) != n:
         raise CalibrationError(
             f"found {len(masks)} drops but {n} pH values were given; every buffer drop must be in the frame, "

@@ -53,8 +53,17 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
     click.echo(f"warning: {message}", err=True)
 
 
-def install_warning_printer() -> None:
-    """Warnings become one 'warning: ...' line on stderr (no file/line noise)."""
+def install_warning_printer(ctx: click.Context) -> None:
+    """For the life of the command: warnings become one 'warning: ...' line on stderr.
+
+    Our own warnings (suspicious but usable input, the generic indicator table)
+    are always shown; library deprecation notices are not a user's business.
+    Filters are restored when the command ends (the process may be a test run).
+    """
+    ctx.with_resource(warnings.catch_warnings())
+    warnings.simplefilter("always")
+    warnings.simplefilter("ignore", DeprecationWarning)
+    warnings.simplefilter("ignore", PendingDeprecationWarning)
     warnings.showwarning = _show_warning
 
 

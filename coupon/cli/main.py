@@ -40,7 +40,7 @@ standard or specification.
 def cli(ctx: click.Context, debug: bool) -> None:
     ctx.ensure_object(dict)
     ctx.obj["debug"] = debug
-    install_warning_printer()
+    install_warning_printer(ctx)
 
 
 for _module, _attr in COMMANDS:

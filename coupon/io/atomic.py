@@ -17,6 +17,15 @@ import numpy as np
 import pandas as pd
 
 
+def _current_umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
+_UMASK = _current_umask()
+
+
 @contextmanager
 def atomic_path(dest: str | os.PathLike, suffix: str | None = None) -> Iterator[Path]:
     """Yield a temporary path beside ``dest``; on success rename it to ``dest``.
@@ -31,6 +40,7 @@ def atomic_path(dest: str | os.PathLike, suffix: str | None = None) -> Iterator[
     tmp_path = Path(tmp)
     try:
         yield tmp_path
+        os.chmod(tmp_path, 0o666 & ~_UMASK)  # mkstemp makes 0600; outputs get the usual mode
         os.replace(tmp_path, dest)
     finally:
         if tmp_path.exists():

@@ -121,13 +121,29 @@ def _parse_exif_time(text: object) -> _dt.datetime | None:
     return None
 
 
+def _read_exif(im: Image.Image) -> Image.Exif:
+    """EXIF tags without decoding pixels.
+
+    Pillow's ``getexif`` decodes a whole PNG to look for a late eXIf chunk, so
+    for PNG only the EXIF found before the pixel data is read.
+    """
+    if im.format == "PNG":
+        exif = Image.Exif()
+        raw = im.info.get("exif")
+        if raw:
+            exif.load(raw)
+        return exif
+    return im.getexif()
+
+
 def _header(data: bytes, path: Path, max_pixels: int) -> tuple[int, _dt.datetime | None]:
     """Check the header before decoding; return (EXIF orientation, capture time)."""
     try:
         with Image.open(io.BytesIO(data)) as im:
             width, height = im.size
             fmt = im.format
-            exif = im.getexif()
+            if width > 0 and height > 0 and width * height <= max_pixels:
+                exif = _read_exif(im)
     except UnidentifiedImageError:
         raise ImageLoadError(
             "not an image in a supported format (JPEG, PNG, TIFF, BMP, WebP)", path

@@ -24,9 +24,7 @@ PALETTE = ("#0072B2", "#E69F00", "#009E73", "#D55E00", "#CC79A7", "#56B4E9", "#F
 
 
 def ph_colormap():
-    cmap = plt.get_cmap(PH_CMAP).copy()
-    cmap.set_bad(NO_DATA_GREY)
-    return cmap
+    return plt.get_cmap(PH_CMAP).with_extremes(bad=NO_DATA_GREY)
 
 
 def ph_figure(ph: np.ndarray, dest: str | Path, title: str = "", ph_range: tuple[float, float] = (3.0, 11.0),
