@@ -32,10 +32,11 @@ class DemoContext:
     root: Path
     small: bool = False
     summary: dict = field(default_factory=dict)
+    images_dir: Path | None = None
 
     @property
     def images(self) -> Path:
-        return self.root / "images"
+        return self.images_dir or self.root / "images"
 
     @property
     def results(self) -> Path:
@@ -97,23 +98,31 @@ BUFFER_PH = [3, 4, 5, 6, 7, 8, 9, 10, 11]
 TEST_DROP_PH = [4.0, 5.5, 7.0, 9.5]
 
 
-def calibration_step(ctx: DemoContext) -> None:
-    """Target photo -> scale and white balance; patch chart -> colour matrix; buffers -> indicator; pH maps."""
+def calibration_scenes(ctx: DemoContext) -> dict:
+    """Write the calibration scenes (target, patch chart, buffers, unknown drops); return their paths."""
     from coupon.synth.indicator import buffer_strip_scene, patch_chart_scene
     from coupon.synth.target import target_scene
 
-    img, truth = target_scene(seed=101, tilt_x_deg=12, tilt_y_deg=-8, roll_deg=4, px_per_mm=10.0,
-                              cast=(1.06, 1.0, 0.90))
+    cast = (1.06, 1.0, 0.90)  # the bench lamp is warm
+    img, truth = target_scene(seed=101, tilt_x_deg=12, tilt_y_deg=-8, roll_deg=4, px_per_mm=10.0, cast=cast)
     truth = {"px_per_mm": truth["px_per_mm"], "hom_mm_to_img": truth["hom_mm_to_img"], "cast": truth["cast"]}
-    target = ctx.save_scene("bench_target.jpg", img, truth)
-    chart, table = patch_chart_scene(seed=102, cast=(1.06, 1.0, 0.90))
-    chart_path = ctx.save_scene("bench_patch_chart.png", chart, {"cast": [1.06, 1.0, 0.90]})
-    patches = ctx.images / "bench_patch_chart_patches.csv"
-    table.to_csv(patches, index=False, float_format="%.4f")
+    paths = {"target": ctx.save_scene("bench_target.jpg", img, truth), "target_truth": truth}
+    chart, table = patch_chart_scene(seed=102, cast=cast)
+    paths["chart"] = ctx.save_scene("bench_patch_chart.png", chart, {"cast": list(cast)})
+    paths["patches"] = ctx.images / "bench_patch_chart_patches.csv"
+    table.to_csv(paths["patches"], index=False, float_format="%.4f")
     buffers, btruth = buffer_strip_scene(BUFFER_PH, seed=103)
-    buffers_path = ctx.save_scene("buffers_universal.jpg", buffers, btruth)
+    paths["buffers"] = ctx.save_scene("buffers_universal.jpg", buffers, btruth)
     drops, dtruth = buffer_strip_scene(TEST_DROP_PH, seed=104, per_row=4)
-    drops_path = ctx.save_scene("unknown_drops.jpg", drops, dtruth)
+    paths["drops"] = ctx.save_scene("unknown_drops.jpg", drops, dtruth)
+    return paths
+
+
+def calibration_step(ctx: DemoContext) -> None:
+    """Target photo -> scale and white balance; patch chart -> colour matrix; buffers -> indicator; pH maps."""
+    paths = calibration_scenes(ctx)
+    target, chart_path, patches = paths["target"], paths["chart"], paths["patches"]
+    buffers_path, drops_path, truth = paths["buffers"], paths["drops"], paths["target_truth"]
 
     ctx.results.mkdir(parents=True, exist_ok=True)
     ctx.run(["calibrate", "target", ctx.results / "print_target"])
@@ -132,6 +141,9 @@ def calibration_step(ctx: DemoContext) -> None:
         "indicator_buffers": len(prof.indicator.ph),
     }
 
+
+#: Functions that write a job's scenes into ``ctx.images`` (used by ``python -m coupon.synth.demo_images``).
+SCENE_WRITERS: list[Callable[[DemoContext], object]] = [calibration_scenes]
 
 #: (name, step) in run order; later jobs append theirs.
 STEPS: list[tuple[str, Callable[[DemoContext], None]]] = [

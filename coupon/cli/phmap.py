@@ -10,7 +10,6 @@ import click
 import numpy as np
 import pandas as pd
 
-from coupon.calibrate.colour import apply_correction
 from coupon.calibrate.profile import Profile, load_profile
 from coupon.calibrate.shipped import default_indicator
 from coupon.cli.common import EXIT_FAILED, fail, report_failure
@@ -32,8 +31,7 @@ class PhMapJob:
     def __call__(self, path: Path) -> dict:
         img = load_image(path, max_pixels=self.max_pixels)
         model = self.profile.indicator
-        rgb = apply_correction(img.rgb, self.profile.colour)
-        ph, _ = model.map_rgb(rgb)
+        ph, _ = model.map_rgb(img.rgb, self.profile.colour)
         valid = np.isfinite(ph)
         stem = path.stem
         tiff = write_float_tiff(self.out_dir / f"{stem}_ph.tiff", ph)
