@@ -46,6 +46,10 @@ def bad_files(tmp_path):
     files["text"] = tmp_path / "notes.jpg"
     files["text"].write_text("not a picture")
     files["missing"] = tmp_path / "missing.jpg"
+    from tests.test_images import _png_header_only
+
+    files["huge"] = tmp_path / "huge.png"
+    _png_header_only(files["huge"], 60_000, 60_000)  # 3600 megapixels claimed
     return files
 
 
@@ -175,7 +179,7 @@ def test_calibrate_indicator_from_table(runner, tmp_path):
     assert load_profile(prof).indicator.details["comments"] == ["our own chart"]
 
 
-@pytest.mark.parametrize("kind", ["empty", "truncated", "text", "missing"])
+@pytest.mark.parametrize("kind", ["empty", "truncated", "text", "missing", "huge"])
 @pytest.mark.parametrize("command", ["scale", "colour", "indicator"])
 def test_bad_images_in_every_calibrate_command(runner, bad_files, tmp_path, kind, command, scenes):
     f = bad_files[kind]
