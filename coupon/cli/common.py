@@ -5,7 +5,6 @@ from __future__ import annotations
 import sys
 import traceback
 import warnings
-from pathlib import Path
 
 import click
 
@@ -95,13 +94,3 @@ def parse_size(text: str, param_hint: str, integer: bool = False) -> tuple[float
     if a <= 0 or b <= 0:
         raise click.BadParameter(f"{text!r}: both sizes must be positive", param_hint=param_hint)
     return a, b
-
-
-def out_dir_option(f):
-    return click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
-                        help="Output folder (created if missing).")(f)
-
-
-def profile_option(required: bool = False, help_text: str = "Calibration profile (JSON).", exists=True):
-    return click.option("--profile", "profile_path", required=required,
-                        type=click.Path(dir_okay=False, path_type=Path, exists=False), help=help_text)
