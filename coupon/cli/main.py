@@ -15,6 +15,9 @@ COMMANDS = [
     ("coupon.cli.calibrate", "calibrate"),
     ("coupon.cli.phmap", "phmap"),
     ("coupon.cli.demo", "demo"),
+    ("coupon.cli.campaign", "campaign"),
+    ("coupon.cli.campaign", "export"),
+    ("coupon.cli.report", "report"),
 ]
 
 HELP = """Calibrated, traceable numbers from photos of corrosion tests.
