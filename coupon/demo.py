@@ -12,6 +12,7 @@ Each job adds a step to :data:`STEPS`; a step generates its scenes into
 
 from __future__ import annotations
 
+import importlib
 import json
 import time
 from dataclasses import dataclass, field
@@ -146,9 +147,19 @@ def calibration_step(ctx: DemoContext) -> None:
 SCENE_WRITERS: list[Callable[[DemoContext], object]] = [calibration_scenes]
 
 #: (name, step) in run order; later jobs append theirs.
-STEPS: list[tuple[str, Callable[[DemoContext], None]]] = [
+#: A step is a function or "module:function" (imported when the demo runs, so importing
+#: this module stays cheap).
+STEPS: list[tuple[str, Callable[[DemoContext], None] | str]] = [
     ("calibration", calibration_step),
+    ("droplet", "coupon.demo_droplet:droplet_step"),
 ]
+
+
+def _resolve(step):
+    if callable(step):
+        return step
+    module, _, func = step.partition(":")
+    return getattr(importlib.import_module(module), func)
 
 
 def run_demo(root: Path, small: bool = False) -> DemoContext:
@@ -157,7 +168,7 @@ def run_demo(root: Path, small: bool = False) -> DemoContext:
     t0 = time.perf_counter()
     for name, step in STEPS:
         click.echo(click.style(f"== demo: {name} ==", fg="cyan"))
-        step(ctx)
+        _resolve(step)(ctx)
     ctx.summary["seconds"] = round(time.perf_counter() - t0, 1)
     ctx.summary["lab"] = LAB_NAME
     write_text(ctx.results / "demo_summary.json", json.dumps(ctx.summary, indent=2, default=float) + "\n")
