@@ -152,6 +152,7 @@ SCENE_WRITERS: list[Callable[[DemoContext], object]] = [calibration_scenes]
 STEPS: list[tuple[str, Callable[[DemoContext], None] | str]] = [
     ("calibration", calibration_step),
     ("droplet", "coupon.demo_droplet:droplet_step"),
+    ("pits", "coupon.demo_pits:pits_step"),
 ]
 
 

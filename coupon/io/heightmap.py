@@ -1,0 +1,128 @@
+"""Height maps (profilometer or focus-variation scans) registered pixel for pixel to an image.
+
+Accepted files:
+
+* TIFF (``.tif``, ``.tiff``): one channel of float32/float64 (or integer counts
+  already in the stated unit), read with tifffile (installed with scikit-image);
+* CSV or text (``.csv``, ``.txt``): a grid of numbers, comma, semicolon, tab or
+  space separated, one image row per line, no header; empty cells or ``nan``
+  mean missing data.
+
+Values are surface heights in micrometres (``unit="um"``) or millimetres
+(``unit="mm"``); :func:`load_height_map` returns millimetres, float32, NaN where
+missing.  A plausibility check catches the commonest mistake, a wrong unit: the
+spread of heights over the scan must look like a coupon surface.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import numpy as np
+
+from coupon.errors import ImageLoadError
+
+#: Unit name -> millimetres per unit.
+HEIGHT_UNITS = {"um": 1e-3, "mm": 1.0}
+#: Robust spread (1st to 99th percentile) in mm that a height map of a coupon may show.
+PLAUSIBLE_SPREAD_MM = (1e-4, 20.0)
+
+
+def _read_tiff(path: Path) -> np.ndarray:
+    import tifffile
+
+    try:
+        arr = tifffile.imread(path)
+    except Exception as exc:  # noqa: BLE001 - tifffile raises many types for bad files
+        raise ImageLoadError(f"cannot read the height map as TIFF ({type(exc).__name__}: {exc})", path) from None
+    arr = np.squeeze(np.asarray(arr))
+    if arr.ndim != 2:
+        raise ImageLoadError(f"height map must have one channel (rows x cols), got shape {arr.shape}; "
+                             "export heights as a single-channel float TIFF", path)
+    if not (np.issubdtype(arr.dtype, np.floating) or np.issubdtype(arr.dtype, np.integer)):
+        raise ImageLoadError(f"height map pixels must be numbers, got {arr.dtype}", path)
+    return arr.astype(np.float32)
+
+
+def _read_text(path: Path) -> np.ndarray:
+    try:
+        text = path.read_text(encoding="utf-8-sig")
+    except UnicodeDecodeError:
+        raise ImageLoadError("height map CSV is not a text file", path) from None
+    for sep in (",", ";", "\t", None):
+        if sep is not None and sep not in text.split("\n", 1)[0]:
+            continue
+        rows = [ln for ln in text.splitlines() if ln.strip()]
+        try:
+            data = [[float(v) if v.strip() and v.strip().lower() != "nan" else np.nan
+                     for v in (ln.split(sep) if sep else ln.split())] for ln in rows]
+        except ValueError as exc:
+            raise ImageLoadError(f"height map CSV holds a value that is not a number ({exc}); "
+                                 "expected a grid of heights with no header", path) from None
+        widths = {len(r) for r in data}
+        if len(widths) != 1:
+            raise ImageLoadError(f"height map CSV rows have different lengths {sorted(widths)[:5]}; "
+                                 "expected one image row per line", path)
+        return np.asarray(data, dtype=np.float32)
+    raise ImageLoadError("height map CSV is empty", path)
+
+
+def load_height_map(path: str | os.PathLike, unit: str, shape_rc: tuple[int, int] | None = None) -> np.ndarray:
+    """Read a height map and return it in millimetres.
+
+    Parameters
+    ----------
+    path : path-like
+        TIFF or CSV file.
+    unit : {'um', 'mm'}
+        Unit of the stored values.
+    shape_rc : (rows, cols), optional
+        The image's size; the height map must match it exactly.
+
+    Returns
+    -------
+    (M, N) ndarray of float32
+        Heights in mm, NaN where missing.
+
+    Raises
+    ------
+    ImageLoadError
+        Missing or unreadable file, wrong layout, wrong size, no valid values, or a
+        spread of heights implausible for the stated unit (a likely unit mix-up).
+    """
+    path = Path(path)
+    if unit not in HEIGHT_UNITS:
+        raise ValueError(f"{unit!r} height unit is invalid, it must be one of {sorted(HEIGHT_UNITS)}")
+    if not path.is_file():
+        raise ImageLoadError("height map not found; check the path (or the {stem} pattern)", path)
+    suffix = path.suffix.lower()
+    if suffix in (".tif", ".tiff"):
+        arr = _read_tiff(path)
+    elif suffix in (".csv", ".txt"):
+        arr = _read_text(path)
+    else:
+        raise ImageLoadError(f"height map must be a .tif/.tiff or .csv/.txt file, got {suffix or 'no suffix'!r}", path)
+    if shape_rc is not None and tuple(arr.shape) != tuple(shape_rc):
+        raise ImageLoadError(
+            f"height map is {arr.shape[1]}x{arr.shape[0]} values but the image is {shape_rc[1]}x{shape_rc[0]} px "
+            "(width x height); it must be registered pixel for pixel to the image", path)
+    arr[~np.isfinite(arr)] = np.nan
+    finite = np.isfinite(arr)
+    if finite.mean() < 0.5:
+        raise ImageLoadError(f"height map has valid values on only {100 * finite.mean():.0f} % of its pixels "
+                             "(at least 50 % expected)", path)
+    mm = arr * np.float32(HEIGHT_UNITS[unit])
+    step = max(1, int(np.sqrt(mm.size / 1e6)))
+    sub = mm[::step, ::step]
+    lo, hi = np.nanpercentile(sub, [1, 99])
+    spread = float(hi - lo)
+    if spread > PLAUSIBLE_SPREAD_MM[1]:
+        hint = " (are the values in micrometres? use --height-unit um)" if unit == "mm" else ""
+        raise ImageLoadError(f"height map spans {spread:.4g} mm between its 1st and 99th percentiles, more than "
+                             f"{PLAUSIBLE_SPREAD_MM[1]:g} mm a coupon can show{hint}", path)
+    if spread < PLAUSIBLE_SPREAD_MM[0]:
+        hint = " (are the values in millimetres? use --height-unit mm)" if unit == "um" else ""
+        raise ImageLoadError(f"height map spans only {spread * 1000:.3g} um between its 1st and 99th percentiles; "
+                             f"a flat scan cannot show pits{hint}", path)
+    return mm.astype(np.float32, copy=False)
