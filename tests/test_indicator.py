@@ -174,3 +174,17 @@ def test_map_rgb_with_correction_equals_correcting_first(fitted):
     diff = np.abs(fast[both] - slow[both])
     assert np.percentile(diff, 99) < 0.05 and np.median(diff) <= 0.01
     assert (np.isfinite(fast) != np.isfinite(slow)).mean() < 0.01
+
+
+def test_colour_cache_gives_the_same_answer_and_is_not_pickled(fitted):
+    import pickle
+
+    img, _ = buffer_strip_scene([4.5, 7.5, 9.5], seed=13, per_row=3)
+    fresh = IndicatorModel.from_dict(fitted.to_dict())
+    first, d1 = fresh.map_rgb(img)
+    again, d2 = fresh.map_rgb(img)  # every colour now comes from the cache
+    np.testing.assert_array_equal(first, again)
+    np.testing.assert_array_equal(d1, d2)
+    other = IndicatorModel.from_dict(fitted.to_dict()).map_rgb(img[::-1])[0][::-1]
+    np.testing.assert_array_equal(first, other)
+    assert len(pickle.dumps(fresh)) < 100_000  # the 2^24 tables stay behind

@@ -21,7 +21,8 @@ therefore separates rust by opacity and darkness as well.
 
 Speed: an image is quantised to 8 bits per channel, its distinct colours
 (typically 1e4 to 5e5) are projected with a k-d tree, and a 2^24-entry table
-maps every pixel back; no per-pixel Python loop.
+maps every pixel back; the table persists with the model, so a time-lapse
+projects each colour once.  No per-pixel Python loop.
 """
 
 from __future__ import annotations
@@ -123,24 +124,50 @@ class IndicatorModel:
         ``correction`` (a :class:`~coupon.calibrate.colour.ColourCorrection`) is
         applied to the image's distinct colours only, which is exactly what
         correcting every pixel first would give, at a fraction of the cost.
+
+        Colours are quantised to 8 bits per channel.  Every colour's reading is
+        kept in a lookup table that lives as long as the model, so the frames
+        of a time-lapse, which share most of their colours, project only the
+        colours not seen before.
         """
         codes = _rgb_codes(rgb)
-        present = np.zeros(1 << 24, dtype=bool)
-        present[codes] = True
-        uniq = np.flatnonzero(present)
-        del present
-        uniq_rgb = np.column_stack([(uniq >> 16) & 255, (uniq >> 8) & 255, uniq & 255]) / 255.0
-        if correction is not None and not correction.is_identity:
-            from coupon.calibrate.colour import apply_linear
+        ph_lut, d_lut = self._lookup_tables(correction)
+        dist = d_lut[codes]
+        unknown = dist < 0
+        n_unknown = int(np.count_nonzero(unknown))
+        if n_unknown:
+            if n_unknown > 1 << 20:  # many new colours: a presence table beats sorting them
+                present = np.zeros(1 << 24, dtype=bool)
+                present[codes[unknown]] = True
+                new = np.flatnonzero(present).astype(np.uint32)
+                del present
+            else:
+                new = np.unique(codes[unknown])
+            new_rgb = np.column_stack([(new >> 16) & 255, (new >> 8) & 255, new & 255]) / 255.0
+            if correction is not None and not correction.is_identity:
+                from coupon.calibrate.colour import apply_linear
 
-            lin = np.clip(apply_linear(cs.srgb_to_linear(uniq_rgb), correction), 0.0, 1.0)
-            uniq_rgb = cs.linear_to_srgb(lin)
-        ph_u, d_u = self.map_lab(cs.srgb_to_lab(uniq_rgb))
-        lut = np.full(1 << 24, np.nan, dtype=np.float32)
-        lut[uniq] = ph_u
-        ph = lut[codes]
-        lut[uniq] = d_u
-        return ph, lut[codes]
+                lin = np.clip(apply_linear(cs.srgb_to_linear(new_rgb), correction), 0.0, 1.0)
+                new_rgb = cs.linear_to_srgb(lin)
+            ph_new, d_new = self.map_lab(cs.srgb_to_lab(new_rgb))
+            ph_lut[new] = ph_new
+            d_lut[new] = d_new
+            dist = d_lut[codes]
+        return ph_lut[codes], dist
+
+    def _lookup_tables(self, correction) -> tuple[np.ndarray, np.ndarray]:
+        """Per-correction (pH, distance) tables over all 2^24 colours; distance < 0 = not yet known."""
+        key = None if correction is None or correction.is_identity else _correction_key(correction)
+        cache = self.__dict__.setdefault("_luts", {})
+        if key not in cache:
+            if len(cache) >= 2:  # 128 MB each: keep the two most recent corrections
+                cache.pop(next(iter(cache)))
+            cache[key] = (np.full(1 << 24, np.nan, dtype=np.float32), np.full(1 << 24, -1.0, dtype=np.float32))
+        return cache[key]
+
+    def __getstate__(self):
+        # the lookup tables and the k-d tree are rebuilt on demand; never pickle them to workers
+        return {k: v for k, v in self.__dict__.items() if k not in ("_luts", "_tree", "_path")}
 
     # -- profile --------------------------------------------------------
     def to_dict(self) -> dict:
@@ -174,6 +201,11 @@ class IndicatorModel:
             l_weight=float(d.get("l_weight", DEFAULT_L_WEIGHT)), spread=spread,
             details=dict(d.get("details", {})),
         )
+
+
+def _correction_key(correction) -> bytes:
+    m = b"" if correction.matrix is None else np.asarray(correction.matrix, dtype=np.float64).tobytes()
+    return np.asarray(correction.gains, dtype=np.float64).tobytes() + m
 
 
 def _rgb_codes(rgb: np.ndarray) -> np.ndarray:
