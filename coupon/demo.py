@@ -153,6 +153,7 @@ STEPS: list[tuple[str, Callable[[DemoContext], None] | str]] = [
     ("calibration", calibration_step),
     ("droplet", "coupon.demo_droplet:droplet_step"),
     ("pits", "coupon.demo_pits:pits_step"),
+    ("panels", "coupon.demo_panels:panels_step"),
 ]
 
 

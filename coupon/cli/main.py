@@ -14,6 +14,7 @@ from coupon.cli.common import install_warning_printer
 COMMANDS = [
     ("coupon.cli.calibrate", "calibrate"),
     ("coupon.cli.phmap", "phmap"),
+    ("coupon.cli.panels", "panels"),
     ("coupon.cli.pits", "pits"),
     ("coupon.cli.droplet", "droplet"),
     ("coupon.cli.demo", "demo"),

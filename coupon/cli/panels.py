@@ -1,0 +1,328 @@
+"""``coupon panels``: find, rectify and rate coated test panels in tray photos."""
+
+from __future__ import annotations
+
+import csv
+import re
+from dataclasses import dataclass
+from pathlib import Path
+
+import click
+import numpy as np
+import pandas as pd
+
+from coupon import __version__
+from coupon.calibrate.profile import Profile, load_profile
+from coupon.cli.common import EXIT_FAILED, fail, parse_numbers, parse_size, report_failure
+from coupon.errors import AnalysisError, CouponError
+from coupon.io.atomic import write_csv, write_json
+from coupon.io.batch import ResumeLedger, run_batch, settings_hash
+from coupon.io.images import DEFAULT_MAX_PIXELS, expand_image_paths, file_sha256, load_image
+from coupon.report.panel_figures import write_panel_overlay
+from coupon.segment.panels import PanelSettings, rate_panel
+from coupon.segment.panels.detect import check_panel_size, find_panels, read_qr_codes, rectify_panel
+from coupon.segment.panels.rust import RustSettings
+from coupon.segment.panels.scribe import SCRIBE_MODES, ScribeSettings
+
+#: Columns of DIR/panels.csv (kept even when a batch finds nothing).
+PANEL_COLUMNS = [
+    "image", "panel_id", "id_source", "system", "replicate", "position", "row", "col", "exposure_h",
+    "x_px", "y_px", "rated_area_mm2", "rust_area_mm2", "rust_area_pct", "rust_area_pct_unc", "rust_sites",
+    "rust_grade", "rust_distribution", "rust_grade_written", "ri_degree", "scribe_found", "scribe_kind",
+    "creep_mean_mm", "creep_max_mm", "creep_min_mm", "creep_left_mean_mm", "creep_right_mean_mm",
+    "creep_rating", "overlay", "json", "status",
+]
+
+_HOURS_RE = re.compile(r"(?<![0-9.])(\d+(?:\.\d+)?)\s*h(?![a-z])", re.IGNORECASE)
+
+
+def hours_from_name(path: Path) -> float | None:
+    """Exposure time from a file name such as ``rack2_0240h.jpg`` (None when absent or ambiguous)."""
+    found = _HOURS_RE.findall(path.stem)
+    return float(found[0]) if len(found) == 1 else None
+
+
+def read_layout(path: Path) -> dict[tuple[int, int], dict]:
+    """Layout CSV (row, col, panel_id, system, replicate) -> {(row, col): {...}}; a position may appear once."""
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            rows = list(csv.DictReader(fh))
+    except OSError as exc:
+        raise click.BadParameter(f"{path}: cannot be read ({exc.strerror or exc})", param_hint="--layout")
+    need = {"row", "col", "panel_id"}
+    if not rows or not need <= set(rows[0]):
+        raise click.BadParameter(f"{path}: expected columns row, col, panel_id (and optionally system, "
+                                 f"replicate), got {sorted(rows[0]) if rows else 'no rows'}", param_hint="--layout")
+    out: dict[tuple[int, int], dict] = {}
+    first_line: dict[tuple[int, int], int] = {}
+    for line, r in enumerate(rows, start=2):
+        try:
+            pos = (int(r["row"]), int(r["col"]))
+        except (TypeError, ValueError):
+            raise click.BadParameter(f"{path} line {line}: row and col must be whole numbers, got "
+                                     f"{r['row']!r}, {r['col']!r}", param_hint="--layout") from None
+        if pos in out:
+            raise click.BadParameter(f"{path}: position row {pos[0]}, col {pos[1]} is named twice (lines "
+                                     f"{first_line[pos]} and {line}); each position may appear once",
+                                     param_hint="--layout")
+        first_line[pos] = line
+        out[pos] = {"panel_id": str(r["panel_id"]).strip(), "system": str(r.get("system") or "").strip(),
+                    "replicate": str(r.get("replicate") or "").strip()}
+    return out
+
+
+def read_manifest(path: Path) -> dict[str, float]:
+    """Manifest CSV (image, exposure_h) -> {file name: hours}."""
+    try:
+        table = pd.read_csv(path)
+    except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
+        raise click.BadParameter(f"{path}: cannot be read as CSV ({exc})", param_hint="--manifest") from None
+    if not {"image", "exposure_h"} <= set(table.columns):
+        raise click.BadParameter(f"{path}: expected columns image, exposure_h, got {list(table.columns)}",
+                                 param_hint="--manifest")
+    return {Path(str(i)).name: float(h) for i, h in zip(table["image"], table["exposure_h"])}
+
+
+def parse_mask(text: str) -> tuple:
+    """``x,y,w,h`` (rectangle) or ``x,y,d`` (circle) in mm on the rectified panel."""
+    vals = parse_numbers(text, None, "x,y,w,h for a rectangle or x,y,d for a hole, in mm", "--mask")
+    if len(vals) == 4:
+        return ("rect", *vals)
+    if len(vals) == 3:
+        return ("circle", *vals)
+    raise click.BadParameter(f"{text!r}: give 4 numbers (x,y,w,h) for a rectangle or 3 (x,y,d) for a hole",
+                             param_hint="--mask")
+
+
+def _safe(text: str) -> str:
+    return re.sub(r"[^A-Za-z0-9._-]+", "_", text).strip("_") or "panel"
+
+
+def _empty_row(image: str, status: str) -> dict:
+    return {c: np.nan for c in PANEL_COLUMNS} | {"image": image, "status": status, "scribe_found": False}
+
+
+def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out_dir: Path,
+               layout: dict | None = None, exposure_h: float | None = None,
+               max_pixels: int = DEFAULT_MAX_PIXELS) -> list[dict]:
+    """Rate every panel in one tray photo; write its overlays and JSON files; return the CSV rows.
+
+    Raises
+    ------
+    ImageLoadError, AnalysisError
+        The image cannot be read, or no panel is found in it.
+    """
+    img = load_image(path, max_pixels=max_pixels)
+    quads = find_panels(img.rgb)
+    if not quads:
+        raise AnalysisError("no panel found: nothing stands out from the tray; check that the panels are in "
+                            "the frame and differ in colour from the tray", path)
+    qr = read_qr_codes(img.rgb, quads) if settings.qr else {}
+    px_scale = profile.scale.px_per_mm if (profile is not None and profile.scale is not None) else None
+    inside = [q for q in quads if q.touches is None]
+    median_area = float(np.median([q.area_px2 for q in inside])) if len(inside) >= 3 else None
+    rows = []
+    for i, q in enumerate(quads):
+        r, c = q.position
+        ident = {"panel_id": f"R{r}C{c}", "id_source": "position", "system": "", "replicate": ""}
+        if layout and (r, c) in layout:
+            ident.update(layout[(r, c)], id_source="layout")
+        if i in qr:
+            ident.update(panel_id=qr[i][0], id_source="qr")
+        centre = q.centre_xy
+        row = _empty_row(str(path), "ok") | ident | {
+            "position": f"R{r}C{c}", "row": r, "col": c,
+            "exposure_h": np.nan if exposure_h is None else float(exposure_h),
+            "x_px": float(centre[0]), "y_px": float(centre[1]),
+        }
+        if q.touches is not None:
+            row["status"] = (f"panel partly outside the frame (touches the {q.touches} edge); "
+                             "reframe so that every panel is wholly in the photo")
+            rows.append(row)
+            continue
+        problem = check_panel_size(q, settings.size_mm, px_scale, median_area, settings.size_tolerance)
+        if problem:
+            row["status"] = problem
+            rows.append(row)
+            continue
+        panel = rectify_panel(img.rgb, q.corners_xy, settings.size_mm, settings.px_per_mm)
+        boxes = []
+        if i in qr:
+            # the QR label is not coating: leave its box (plus 2 mm) out of the rating
+            import cv2
+
+            mm = cv2.perspectiveTransform(qr[i][1].reshape(-1, 1, 2), panel.scale.homography).reshape(-1, 2)
+            lo, hi = mm.min(axis=0) - 2, mm.max(axis=0) + 2
+            if np.all(hi > 0) and np.all(lo < panel.size_mm):
+                boxes.append((lo[0], lo[1], hi[0], hi[1]))
+        res = rate_panel(panel, settings, profile.colour if profile is not None else None, boxes)
+        stem = f"{path.stem}_{_safe(row['panel_id'])}"
+        overlay = out_dir / "overlays" / f"{stem}.png"
+        title = (f"{row['panel_id']} {row['position']}  rust {res['rust_area_pct']:.2f} %  "
+                 f"D610 {res['rust_grade_written']}  {res['ri_degree']}")
+        if res["scribe_found"]:
+            title += f"  creep {res['creep_mean_mm']:.2f} mm"
+        write_panel_overlay(overlay, panel.linear, panel.px_per_mm, res["_rated"], res["_rust"].site_mask,
+                            res["_scribe"], title)
+        status = "ok"
+        if settings.scribe.mode in ("line", "x") and not res["scribe_found"]:
+            status = f"scribe not found ({res['scribe_note']}); rust rated without a scribe zone"
+        for k in PANEL_COLUMNS:
+            if k in res:
+                row[k] = res[k]
+        row.update(overlay=str(overlay), status=status)
+        jpath = out_dir / "panels" / f"{stem}.json"
+        row["json"] = str(jpath)
+        scribe = res["_scribe"]
+        write_json(jpath, {
+            **{k: row[k] for k in PANEL_COLUMNS},
+            "corners_xy": q.corners_xy.tolist(), "panel_size_mm": list(panel.size_mm),
+            "coating_srgb": res["coating_srgb"], "rust_pixel_count_pct": res["rust_pixel_count_pct"],
+            "scribe_lines_mm": scribe.lines, "creep_stations": scribe.stations, "scribe_note": scribe.note,
+            "rust_site_area_mm2": res["_rust"].site_area_mm2.tolist(),
+            "settings": settings.to_dict(), "image_sha256": img.sha256,
+            "profile": None if profile is None else str(profile.path),
+            "profile_sha256": None if profile is None else profile.sha256,
+            "coupon_version": __version__,
+            "scales": {"rust_grade": "ASTM D610-08 Table 1", "ri_degree": "ISO 4628-3 (coupon cut-offs)",
+                       "creep_rating": "ASTM D1654 (body of table from memory)"},
+        })
+        rows.append(row)
+    return rows
+
+
+@dataclass(frozen=True)
+class PanelsJob:
+    """Picklable per-image job for the process pool."""
+
+    settings: PanelSettings
+    profile: Profile | None
+    out_dir: Path
+    layout: dict | None
+    hours: float | None
+    manifest: dict | None
+    max_pixels: int
+
+    def exposure_for(self, path: Path) -> float | None:
+        if self.manifest is not None and path.name in self.manifest:
+            return self.manifest[path.name]
+        if self.hours is not None:
+            return self.hours
+        return hours_from_name(path)
+
+    def __call__(self, path: Path) -> list[dict]:
+        return rate_image(path, self.settings, self.profile, self.out_dir, self.layout, self.exposure_for(path),
+                          self.max_pixels)
+
+
+EXAMPLE = """
+\b
+Example:
+  coupon panels trays/*.jpg --out ratings --panel-size 75x150 --edge-mm 5 \\
+      --layout rack.csv --profile bench.json --workers 2
+"""
+
+
+@click.command("panels", epilog=EXAMPLE)
+@click.argument("images", nargs=-1, required=True, type=click.Path(path_type=Path))
+@click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
+              help="Output folder: panels.csv, panels/*.json, overlays/*.png.")
+@click.option("--panel-size", default="75x150", show_default=True,
+              help="Nominal panel size WxH in mm (portrait or landscape in the photo).")
+@click.option("--edge-mm", default=5.0, show_default=True, type=click.FloatRange(min=0),
+              help="Band along the panel edges left out of the rust rating.")
+@click.option("--mask", "masks", multiple=True,
+              help="Area left out of the rating, in mm on the rectified panel from its top-left corner: "
+                   "x,y,w,h (rectangle, e.g. a label) or x,y,d (hole). Repeat for several.")
+@click.option("--layout", "layout_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="CSV with row, col, panel_id, system, replicate: IDs by tray position.")
+@click.option("--qr/--no-qr", default=True, show_default=True, help="Read QR codes on panels or holders as IDs.")
+@click.option("--hours", type=click.FloatRange(min=0), help="Exposure time of every image, h.")
+@click.option("--manifest", "manifest_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="CSV with image, exposure_h (overrides --hours and the file name).")
+@click.option("--profile", "profile_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="Calibration profile: colour correction, and the scale used to check panel sizes.")
+@click.option("--scribe", "scribe_mode", type=click.Choice(SCRIBE_MODES), default="auto", show_default=True,
+              help="Scribe to look for.")
+@click.option("--scribe-width-mm", default=0.5, show_default=True, type=click.FloatRange(min=0, min_open=True),
+              help="Nominal scribe width w.")
+@click.option("--scribe-end-mm", default=10.0, show_default=True, type=click.FloatRange(min=0),
+              help="Length left out at each scribe end (and around an X crossing).")
+@click.option("--min-speck-mm2", default=0.02, show_default=True, type=click.FloatRange(min=0),
+              help="Smallest rust site counted.")
+@click.option("--grid-px-per-mm", default=10.0, show_default=True, type=click.FloatRange(min=1, max=40),
+              help="Resolution of the rectified panel.")
+@click.option("--workers", default=1, show_default=True, type=click.IntRange(min=1), help="Processes.")
+@click.option("--force", is_flag=True, help="Re-rate images already rated into --out.")
+@click.option("--max-megapixels", type=click.FloatRange(min=0, min_open=True), default=DEFAULT_MAX_PIXELS / 1e6,
+              show_default=True, help="Refuse larger images.")
+def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, manifest_path, profile_path,
+           scribe_mode, scribe_width_mm, scribe_end_mm, min_speck_mm2, grid_px_per_mm, workers, force,
+           max_megapixels):
+    """Rate coated test panels in tray photos: rust area and grade (ASTM D610, ISO 4628-3), creepage
+    from a scribe (ASTM D1654), one overlay and one JSON per panel, DIR/panels.csv.
+
+    Ratings support, and do not replace, a qualified inspector working to the governing
+    standard or specification.
+    """
+    size = parse_size(panel_size, "--panel-size")
+    mask_specs = tuple(parse_mask(m) for m in masks)
+    layout = read_layout(layout_path) if layout_path else None
+    manifest = read_manifest(manifest_path) if manifest_path else None
+    profile = None
+    if profile_path:
+        try:
+            profile = load_profile(profile_path)
+        except CouponError as exc:
+            raise fail(exc) from None
+    settings = PanelSettings(
+        size_mm=size, edge_mm=edge_mm, px_per_mm=grid_px_per_mm, masks_mm=mask_specs,
+        rust=RustSettings(min_speck_mm2=min_speck_mm2),
+        scribe=ScribeSettings(mode=scribe_mode, width_mm=scribe_width_mm, end_mm=scribe_end_mm), qr=qr,
+    )
+    out_dir.mkdir(parents=True, exist_ok=True)
+    paths = expand_image_paths(list(images))
+    digest = settings_hash({"settings": settings.to_dict(), "profile": profile.sha256 if profile else None,
+                            "layout": layout and {f"{k}": v for k, v in layout.items()}, "hours": hours,
+                            "manifest": manifest, "command": "panels", "version": 1})
+    ledger = ResumeLedger(out_dir, "panels")
+    table_path = out_dir / "panels.csv"
+    old = pd.read_csv(table_path, dtype={"panel_id": str}) if table_path.exists() else pd.DataFrame(columns=PANEL_COLUMNS)
+    by_image: dict[str, list[dict]] = {}
+    for rec in old.to_dict("records"):
+        by_image.setdefault(str(rec["image"]), []).append(rec)
+    todo = []
+    for p in paths:
+        sha = file_sha256(p) if p.is_file() else ""
+        if not force and sha and ledger.is_done(p, sha, digest) and str(p) in by_image:
+            click.echo(f"{p}: already rated (use --force to redo)")
+            continue
+        todo.append(p)
+    job = PanelsJob(settings, profile, out_dir, layout, hours, manifest, int(max_megapixels * 1e6))
+    failed = 0
+    for out in run_batch(todo, job, workers=workers, label="Rating panels"):
+        if out.ok:
+            rows = out.result
+            bad = [r for r in rows if r["status"] != "ok"]
+            failed += bool(bad)
+            for r in bad:
+                report_failure(f"{out.item} {r['position']}: {r['status']}")
+            if file_sha256(out.item):
+                outputs = [r[k] for r in rows for k in ("overlay", "json") if isinstance(r.get(k), str)]
+                ledger.record(out.item, file_sha256(out.item), digest, outputs, "ok" if not bad else "partial")
+            for r in rows:
+                if r["status"] == "ok":
+                    extra = f", creep {r['creep_mean_mm']:.2f} mm" if r["scribe_found"] else ""
+                    click.echo(f"{out.item} {r['position']} {r['panel_id']}: rust {r['rust_area_pct']:.2f} % "
+                               f"(+/- {r['rust_area_pct_unc']:.2f}), D610 {r['rust_grade_written']}, "
+                               f"{r['ri_degree']}{extra}")
+        else:
+            failed += 1
+            report_failure(out.error, out.trace)
+            rows = [_empty_row(str(out.item), out.error)]
+        by_image[str(out.item)] = rows
+    all_rows = [r for rows in by_image.values() for r in rows]
+    write_csv(table_path, pd.DataFrame(all_rows, columns=PANEL_COLUMNS))
+    click.echo(f"table: {table_path}")
+    if failed:
+        raise SystemExit(EXIT_FAILED)

@@ -1,0 +1,69 @@
+"""Overlay pictures of rated panels, drawn with OpenCV on the rectified panel.
+
+Colours (our own choice from the project palette in :mod:`coupon.report.figures`,
+picked to stand out on white, grey and dark coatings and against rust):
+
+* rust outline: sky blue; rated-area boundary: yellow with a black rim;
+* creep measurement lines: bluish green across the corrosion zone, with the
+  scribe centre line in reddish purple.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import cv2
+import numpy as np
+
+from coupon.calibrate import colourspace as cs
+from coupon.io.atomic import write_image
+from coupon.io.images import to_uint8
+from coupon.report.figures import PALETTE
+
+
+def _rgb255(hex_colour: str) -> tuple[int, int, int]:
+    h = hex_colour.lstrip("#")
+    return tuple(int(h[i:i + 2], 16) for i in (0, 2, 4))
+
+
+OVERLAY = {
+    "rust": _rgb255(PALETTE[5]),      # sky blue
+    "rated": _rgb255(PALETTE[6]),     # yellow
+    "rim": (0, 0, 0),
+    "creep": _rgb255(PALETTE[2]),     # bluish green
+    "scribe": _rgb255(PALETTE[4]),    # reddish purple
+}
+
+
+def panel_overlay(linear: np.ndarray, px_per_mm: float, rated: np.ndarray, sites: np.ndarray,
+                  scribe=None, title: str = "", out_px_per_mm: float = 5.0) -> np.ndarray:
+    """(R, C, 3) uint8 picture of a rated panel at ``out_px_per_mm``."""
+    f = out_px_per_mm / px_per_mm
+    size = (max(1, int(round(linear.shape[1] * f))), max(1, int(round(linear.shape[0] * f))))
+    srgb = cs.linear_to_srgb(np.clip(cv2.resize(linear, size, interpolation=cv2.INTER_AREA), 0, 1))
+    img = np.ascontiguousarray(to_uint8(srgb))
+    for mask, colour, rim in ((rated, OVERLAY["rated"], True), (sites, OVERLAY["rust"], False)):
+        m = cv2.resize(mask.astype(np.uint8), size, interpolation=cv2.INTER_NEAREST)
+        if mask is sites:
+            m = cv2.dilate(m, np.ones((3, 3), np.uint8))
+        contours, _ = cv2.findContours(m, cv2.RETR_LIST, cv2.CHAIN_APPROX_SIMPLE)
+        if rim:
+            cv2.drawContours(img, contours, -1, OVERLAY["rim"], 3)
+        cv2.drawContours(img, contours, -1, colour, 1)
+    if scribe is not None and scribe.found:
+        s = out_px_per_mm
+        for p0, p1 in scribe.lines:
+            cv2.line(img, tuple(int(v * s) for v in p0), tuple(int(v * s) for v in p1), OVERLAY["scribe"], 1)
+        for st in scribe.stations:
+            c, n = np.asarray(st["centre_xy_mm"]), np.asarray(st["normal_xy"])
+            a, b = (c + st["left_edge_mm"] * n) * s, (c + st["right_edge_mm"] * n) * s
+            cv2.line(img, tuple(np.rint(a).astype(int)), tuple(np.rint(b).astype(int)), OVERLAY["creep"], 1)
+    if title:
+        cv2.rectangle(img, (0, 0), (img.shape[1], 16), (255, 255, 255), -1)
+        cv2.putText(img, title[:60], (3, 12), cv2.FONT_HERSHEY_SIMPLEX, 0.38, (0, 0, 0), 1, cv2.LINE_AA)
+    return img
+
+
+def write_panel_overlay(dest: str | Path, *args, **kwargs) -> Path:
+    """Draw :func:`panel_overlay` and write it as PNG (atomically)."""
+    return write_image(dest, panel_overlay(*args, **kwargs))

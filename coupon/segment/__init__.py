@@ -1,0 +1,1 @@
+"""Segmentation: one sub-package or module per job."""

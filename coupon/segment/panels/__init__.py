@@ -1,0 +1,97 @@
+"""Panel rating: find panels in tray photos (:mod:`.detect`), rust (:mod:`.rust`), scribe creep (:mod:`.scribe`).
+
+:func:`rate_panel` chains them for one rectified panel and returns a plain
+result dict (the numbers of one CSV row).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from coupon.calibrate.colour import ColourCorrection, apply_linear
+from coupon.ratings.panel_ratings import distribution_letter, rust_grade, written_grade
+from coupon.ratings.scales import rate
+from coupon.segment.panels.detect import RectifiedPanel
+from coupon.segment.panels.rust import RustSettings, measure_rust, unmix
+from coupon.segment.panels.scribe import ScribeSettings, measure_scribe
+
+
+@dataclass(frozen=True)
+class PanelSettings:
+    """Everything that changes the numbers of a panel rating."""
+
+    size_mm: tuple[float, float] = (75.0, 150.0)
+    edge_mm: float = 5.0
+    px_per_mm: float = 10.0
+    masks_mm: tuple = ()  # ("rect", x, y, w, h) or ("circle", x, y, d) in the rectified panel's mm
+    rust: RustSettings = field(default_factory=RustSettings)
+    scribe: ScribeSettings = field(default_factory=ScribeSettings)
+    qr: bool = True
+    size_tolerance: float = 0.25
+
+    def to_dict(self) -> dict:
+        return {"panel_size_mm": list(self.size_mm), "edge_mm": self.edge_mm, "grid_px_per_mm": self.px_per_mm,
+                "masks_mm": [list(m) for m in self.masks_mm], "rust": self.rust.to_dict(),
+                "scribe": self.scribe.to_dict(), "qr": self.qr, "size_tolerance": self.size_tolerance}
+
+
+def base_mask(shape_rc, px_per_mm: float, edge_mm: float, masks_mm=(), extra_boxes_mm=()) -> np.ndarray:
+    """Rated area before the scribe: the panel minus the edge band, the masks and label boxes."""
+    import cv2
+
+    rows, cols = shape_rc
+    rated = np.zeros(shape_rc, np.uint8)
+    e = int(round(edge_mm * px_per_mm))
+    rated[e:rows - e, e:cols - e] = 1
+    s = px_per_mm
+    for m in masks_mm:
+        if m[0] == "rect":
+            _, x, y, w, h = m
+            cv2.rectangle(rated, (int(round(x * s)), int(round(y * s))),
+                          (int(round((x + w) * s)) - 1, int(round((y + h) * s)) - 1), 0, -1)
+        elif m[0] == "circle":
+            _, x, y, d = m
+            cv2.circle(rated, (int(round(x * s)), int(round(y * s))), int(round(d / 2 * s)), 0, -1)
+    for x0, y0, x1, y1 in extra_boxes_mm:
+        cv2.rectangle(rated, (int(np.floor(x0 * s)), int(np.floor(y0 * s))),
+                      (int(np.ceil(x1 * s)), int(np.ceil(y1 * s))), 0, -1)
+    return rated.astype(bool)
+
+
+def rate_panel(panel: RectifiedPanel, settings: PanelSettings, colour: ColourCorrection | None = None,
+               label_boxes_mm=()) -> dict:
+    """Rust, ratings and scribe creep of one rectified panel.
+
+    Returns a dict with the CSV numbers plus ``_model``, ``_rust``, ``_scribe``
+    and ``_rated`` (arrays and results for the overlay; not written to tables).
+    """
+    lin = panel.linear
+    if colour is not None and not colour.is_identity:
+        lin = np.clip(apply_linear(lin, colour), 0, 1).astype(np.float32)
+    s = panel.px_per_mm
+    rated0 = base_mask(lin.shape[:2], s, settings.edge_mm, settings.masks_mm, label_boxes_mm)
+    model = unmix(lin, rated0, s)
+    scribe = measure_scribe(model, s, panel.size_mm, settings.scribe)
+    rated = rated0 & ~scribe.corridor_mask(lin.shape[:2], s) if scribe.found else rated0
+    rust = measure_rust(model, rated, s, settings.rust)
+    grade = rust_grade(rust.rust_area_pct)
+    letter = distribution_letter(rust.site_area_mm2, rust.site_centroid_mm, rated, s, grade)
+    left, right = scribe.side_means_mm()
+    creep_mean = scribe.creep_mean_mm
+    return {
+        "rated_area_mm2": rust.rated_area_mm2, "rust_area_mm2": rust.rust_area_mm2,
+        "rust_area_pct": rust.rust_area_pct, "rust_area_pct_unc": rust.rust_area_pct_unc,
+        "rust_pixel_count_pct": rust.pixel_count_pct,
+        "rust_sites": rust.sites, "rust_grade": grade, "rust_distribution": letter,
+        "rust_grade_written": written_grade(grade, letter),
+        "ri_degree": rate("iso-4628-3", rust.rust_area_pct),
+        "coating_srgb": [round(float(v), 4) for v in model.coating_srgb],
+        "scribe_found": scribe.found, "scribe_kind": scribe.kind, "scribe_stations": len(scribe.stations),
+        "creep_mean_mm": creep_mean, "creep_max_mm": scribe.creep_max_mm, "creep_min_mm": scribe.creep_min_mm,
+        "creep_left_mean_mm": left, "creep_right_mean_mm": right,
+        "creep_rating": rate("astm-d1654", creep_mean) if np.isfinite(creep_mean) else None,
+        "scribe_note": scribe.note,
+        "_model": model, "_rust": rust, "_scribe": scribe, "_rated": rated,
+    }

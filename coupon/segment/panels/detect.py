@@ -1,0 +1,398 @@
+"""Find coated test panels in a tray photo and rectify each to a millimetre grid.
+
+Pipeline (array in, small results out):
+
+1. :func:`find_panels` works on a copy downscaled to about 1000 px: CIELAB
+   distance from the tray's colour, which is modelled as a smooth quadratic
+   field so that a lighting gradient across the tray does not leak into the
+   foreground; cleaned mask; one quadrilateral per connected component.
+2. Each quadrilateral is refined at full resolution: along every side the
+   colour is sampled across the edge and the sub-pixel point where it passes
+   half-way between tray and panel is found; a robust line is fitted per side
+   and the corners are the intersections of neighbouring lines.
+3. :func:`rectify_panel` maps the quadrilateral to the nominal panel size with
+   :func:`coupon.calibrate.scale.scale_from_rectangle` and warps the photo,
+   decoded to *linear* light (so that interpolation keeps area integrals), to
+   a fixed grid in px/mm with :func:`coupon.calibrate.scale.warp_to_mm_grid`.
+
+Coordinates: corners are OpenCV (x, y) in full-resolution pixels (``*_xy``).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import cv2
+import numpy as np
+from scipy import ndimage as ndi
+
+from coupon.calibrate import colourspace as cs
+from coupon.calibrate.scale import ScaleCalibration, quad_area_px2, scale_from_rectangle, warp_to_mm_grid
+from coupon.errors import AnalysisError
+
+_LUT_LEVELS = 4096
+_DECODE_LUT = cs.srgb_to_linear(np.linspace(0.0, 1.0, _LUT_LEVELS)).astype(np.float32)
+
+
+def linearize(rgb: np.ndarray) -> np.ndarray:
+    """sRGB-encoded [0, 1] to linear light [0, 1] through a 4096-level table (float32)."""
+    idx = np.clip(np.rint(rgb * np.float32(_LUT_LEVELS - 1)), 0, _LUT_LEVELS - 1).astype(np.int16)
+    return _DECODE_LUT[idx]
+
+
+@dataclass(frozen=True)
+class PanelQuad:
+    """One panel found in a photo.
+
+    Attributes
+    ----------
+    corners_xy : (4, 2) ndarray
+        Top-left, top-right, bottom-right, bottom-left corner, full-resolution px.
+    touches : str or None
+        Which frame edge the panel's region touches ("left", "right", "top",
+        "bottom"), None when it lies wholly inside the frame.
+    fill_ratio : float
+        Area of the found region over the area of its quadrilateral (about 1 for a panel).
+    position : (int, int)
+        Row and column in the tray, counted from 1 at the top left.
+    """
+
+    corners_xy: np.ndarray
+    touches: str | None
+    fill_ratio: float
+    position: tuple[int, int] = (0, 0)
+
+    @property
+    def centre_xy(self) -> np.ndarray:
+        """Intersection of the diagonals (the projected centre of a rectangle)."""
+        p = self.corners_xy
+        return _intersect(_line_through(p[0], p[2]), _line_through(p[1], p[3]))
+
+    @property
+    def area_px2(self) -> float:
+        return quad_area_px2(self.corners_xy)
+
+    def sides_px(self) -> tuple[float, float]:
+        """Mean lengths of the (top/bottom, left/right) side pairs."""
+        p = self.corners_xy
+        d = lambda a, b: float(np.linalg.norm(p[a] - p[b]))  # noqa: E731
+        return (d(0, 1) + d(3, 2)) / 2, (d(0, 3) + d(1, 2)) / 2
+
+
+def _line_through(a, b) -> np.ndarray:
+    return np.cross(np.append(a, 1.0), np.append(b, 1.0))
+
+
+def _intersect(l1, l2) -> np.ndarray:
+    p = np.cross(l1, l2)
+    if abs(p[2]) < 1e-12:
+        raise AnalysisError("two panel sides are parallel; cannot place a corner")
+    return p[:2] / p[2]
+
+
+def _order_quad(q: np.ndarray) -> np.ndarray:
+    c = q.mean(axis=0)
+    ang = np.arctan2(q[:, 1] - c[1], q[:, 0] - c[0])
+    q = q[np.argsort(ang)]
+    return np.roll(q, -int(np.argmin(q.sum(axis=1))), axis=0)
+
+
+def _poly_design(rows: int, cols: int, rr: np.ndarray, cc: np.ndarray) -> np.ndarray:
+    y = rr / rows - 0.5
+    x = cc / cols - 0.5
+    return np.column_stack([np.ones_like(x), x, y, x * x, x * y, y * y])
+
+
+def _tray_distance(lab: np.ndarray, iterations: int = 3) -> np.ndarray:
+    """Colour distance of every pixel from a smooth (quadratic) model of the tray's colour."""
+    rows, cols = lab.shape[:2]
+    rr, cc = np.mgrid[0:rows, 0:cols]
+    design = _poly_design(rows, cols, rr.ravel().astype(np.float64), cc.ravel().astype(np.float64))
+    flat = lab.reshape(-1, 3).astype(np.float64)
+    band = max(2, int(0.03 * min(rows, cols)))
+    bg = np.zeros((rows, cols), bool)
+    bg[:band], bg[-band:], bg[:, :band], bg[:, -band:] = True, True, True, True
+    weight = np.array([0.5, 1.0, 1.0])  # lightness counts half: shading changes it most
+    dist = None
+    for _ in range(iterations):
+        sel = bg.ravel()
+        step = max(1, int(sel.sum() // 40000))
+        idx = np.flatnonzero(sel)[::step]
+        coef, *_ = np.linalg.lstsq(design[idx], flat[idx], rcond=None)
+        model = design @ coef
+        dist = np.sqrt((((flat - model) * weight) ** 2).sum(axis=1)).reshape(rows, cols)
+        thr = max(10.0, _otsu(dist))
+        fg = dist > thr
+        bg = ~ndi.binary_dilation(fg, iterations=max(2, int(0.01 * min(rows, cols))))
+        if bg.sum() < 100:
+            break
+    return dist.astype(np.float32)
+
+
+def _otsu(values: np.ndarray) -> float:
+    from skimage.filters import threshold_otsu
+
+    v = values[:: max(1, values.size // 200000)] if values.ndim == 1 else values.ravel()[:: max(1, values.size // 200000)]
+    return float(threshold_otsu(np.clip(v, 0, 100)))
+
+
+def _coarse_quads(mask: np.ndarray, min_area_px: float) -> list[tuple[np.ndarray, str | None, float]]:
+    rows, cols = mask.shape
+    n, labels, stats, _ = cv2.connectedComponentsWithStats(mask.astype(np.uint8), connectivity=8)
+    out = []
+    for k in range(1, n):
+        x, y, w, h, area = stats[k]
+        if area < min_area_px:
+            continue
+        touches = None
+        m = 3  # the morphological clean-up erodes a few pixels at the frame edge
+        if x <= m:
+            touches = "left"
+        elif y <= m:
+            touches = "top"
+        elif x + w >= cols - m:
+            touches = "right"
+        elif y + h >= rows - m:
+            touches = "bottom"
+        comp = (labels[y:y + h, x:x + w] == k).astype(np.uint8)
+        contours, _ = cv2.findContours(comp, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
+        hull = cv2.convexHull(max(contours, key=cv2.contourArea))
+        peri = cv2.arcLength(hull, True)
+        quad = None
+        for eps in np.linspace(0.01, 0.12, 23):
+            approx = cv2.approxPolyDP(hull, eps * peri, True)
+            if len(approx) == 4:
+                quad = approx.reshape(4, 2).astype(np.float64)
+                break
+            if len(approx) < 4:
+                break
+        if quad is None:
+            quad = cv2.boxPoints(cv2.minAreaRect(hull)).astype(np.float64)
+        quad += (x, y)
+        quad = _order_quad(quad)
+        fill = float(area) / max(quad_area_px2(quad), 1.0)
+        out.append((quad, touches, fill))
+    return out
+
+
+def _refine_quad(rgb: np.ndarray, quad_xy: np.ndarray, reach_px: float) -> np.ndarray:
+    """Sub-pixel panel edges: half-way colour crossing across each side, robust line fits."""
+    centre = quad_xy.mean(axis=0)
+    offsets = np.arange(-reach_px, reach_px + 1e-9, 0.5, dtype=np.float32)
+    lines = []
+    for i in range(4):
+        a, b = quad_xy[i], quad_xy[(i + 1) % 4]
+        u = (b - a) / np.linalg.norm(b - a)
+        nrm = np.array([-u[1], u[0]])
+        if np.dot(nrm, (a + b) / 2 - centre) < 0:
+            nrm = -nrm  # pointing out of the panel
+        t = np.linspace(0.08, 0.92, 40)
+        base = a[None, :] + t[:, None] * (b - a)[None, :]
+        pts = base[:, None, :] + offsets[None, :, None] * nrm[None, None, :]  # inner (-) to outer (+)
+        prof = cv2.remap(rgb, pts[..., 0].astype(np.float32), pts[..., 1].astype(np.float32),
+                         cv2.INTER_LINEAR, borderMode=cv2.BORDER_REPLICATE)
+        k = max(2, len(offsets) // 6)
+        inner = np.median(prof[:, :k], axis=1)
+        outer = np.median(prof[:, -k:], axis=1)
+        diff = inner - outer
+        denom = (diff * diff).sum(axis=1)
+        ok = denom > 0.002
+        frac = ((prof - outer[:, None, :]) * diff[:, None, :]).sum(axis=2) / np.maximum(denom, 1e-9)[:, None]
+        edge_pts = []
+        for j in np.flatnonzero(ok):
+            f = frac[j]
+            # first crossing below one half coming from the panel side
+            below = np.flatnonzero(f < 0.5)
+            if below.size == 0 or below[0] == 0:
+                continue
+            m = below[0]
+            f0, f1 = f[m - 1], f[m]
+            s = offsets[m - 1] + (0.5 - f0) / (f1 - f0) * (offsets[m] - offsets[m - 1])
+            edge_pts.append(base[j] + s * nrm)
+        if len(edge_pts) >= 6:
+            vx, vy, x0, y0 = cv2.fitLine(np.asarray(edge_pts, np.float32), cv2.DIST_HUBER, 0, 0.01, 0.01).ravel()
+            lines.append(_line_through(np.array([x0, y0]), np.array([x0 + vx, y0 + vy])))
+        else:
+            lines.append(_line_through(a, b))
+    corners = np.array([_intersect(lines[(i - 1) % 4], lines[i]) for i in range(4)])
+    if np.max(np.linalg.norm(corners - quad_xy, axis=1)) > 3 * reach_px:
+        return quad_xy  # the refinement went astray (a fold, a shadow); keep the coarse corners
+    return corners
+
+
+def assign_positions(quads: list[PanelQuad]) -> list[PanelQuad]:
+    """Row and column of each panel from its centre: rows top to bottom, columns left to right."""
+    if not quads:
+        return []
+    centres = np.array([q.centre_xy for q in quads])
+    heights = np.array([q.sides_px()[1] for q in quads])
+    order = np.argsort(centres[:, 1])
+    rows: list[list[int]] = []
+    for i in order:
+        if rows and centres[i, 1] - np.mean(centres[rows[-1], 1]) < 0.5 * np.median(heights):
+            rows[-1].append(i)
+        else:
+            rows.append([i])
+    out = [None] * len(quads)
+    for r, members in enumerate(rows, start=1):
+        for c, i in enumerate(sorted(members, key=lambda j: centres[j, 0]), start=1):
+            q = quads[i]
+            out[i] = PanelQuad(q.corners_xy, q.touches, q.fill_ratio, (r, c))
+    return sorted(out, key=lambda q: q.position)
+
+
+def find_panels(rgb: np.ndarray, max_side_px: int = 1000, min_area_frac: float = 0.004) -> list[PanelQuad]:
+    """Find every panel in a tray photo.
+
+    Parameters
+    ----------
+    rgb : (M, N, 3) ndarray of float32
+        sRGB photo in [0, 1] (package convention).
+    max_side_px : int
+        Working size of the coarse search.
+    min_area_frac : float
+        Smallest region, as a fraction of the frame, that can be a panel.
+
+    Returns
+    -------
+    list of PanelQuad
+        In tray order (row by row from the top left); empty when nothing stands
+        out from the tray.
+    """
+    rows, cols = rgb.shape[:2]
+    f = min(1.0, max_side_px / max(rows, cols))
+    small = cv2.resize(rgb, (max(1, int(round(cols * f))), max(1, int(round(rows * f)))),
+                       interpolation=cv2.INTER_AREA) if f < 1 else rgb
+    lab = cv2.cvtColor(np.ascontiguousarray(small, dtype=np.float32), cv2.COLOR_RGB2Lab)
+    dist = _tray_distance(lab)
+    thr = max(10.0, _otsu(dist))
+    mask = dist > thr
+    mask = ndi.binary_opening(mask, structure=np.ones((3, 3)), iterations=1)
+    mask = ndi.binary_closing(mask, structure=np.ones((3, 3)), iterations=2)
+    mask = ndi.binary_fill_holes(mask)
+    found = _coarse_quads(mask, min_area_frac * mask.size)
+    quads = []
+    for quad_small, touches, fill in found:
+        quad = (quad_small + 0.5) / f - 0.5
+        if touches is None:
+            quad = _refine_quad(rgb, quad, reach_px=max(4.0, 2.5 / f))
+        quads.append(PanelQuad(quad, touches, fill))
+    return assign_positions(quads)
+
+
+def check_panel_size(quad: PanelQuad, size_mm: tuple[float, float], px_per_mm: float | None = None,
+                     median_area_px2: float | None = None, tolerance: float = 0.25) -> str | None:
+    """Why a found quadrilateral is not a panel of the nominal size (None when it fits).
+
+    With a scale (px/mm from a profile) the area is compared with the nominal
+    area; without one, the side ratio with the nominal side ratio and the area
+    with the median of the panels in the same photo.  ``tolerance`` is relative.
+    """
+    long_mm, short_mm = max(size_mm), min(size_mm)
+    a, b = quad.sides_px()
+    ratio = max(a, b) / max(min(a, b), 1e-9)
+    nominal = long_mm / short_mm
+    if abs(ratio / nominal - 1) > tolerance:
+        return (f"panel sides are in ratio {ratio:.2f}, the nominal {long_mm:g}x{short_mm:g} mm panel has "
+                f"{nominal:.2f}; check --panel-size or whether two panels touch")
+    if px_per_mm:
+        area_mm2 = quad.area_px2 / px_per_mm**2
+        if abs(area_mm2 / (long_mm * short_mm) - 1) > tolerance * 2:
+            side = np.sqrt(area_mm2 / nominal)
+            return (f"panel measures about {side:.0f}x{side * nominal:.0f} mm at the profile's scale "
+                    f"({px_per_mm:.2f} px/mm), not the nominal {short_mm:g}x{long_mm:g} mm; check --panel-size")
+    elif median_area_px2:
+        rel = quad.area_px2 / median_area_px2
+        if abs(rel - 1) > tolerance * 2:
+            return (f"panel area is {rel:.2f} times the median of the panels in this photo; "
+                    "a panel of another size, or two panels touching? check --panel-size")
+    return None
+
+
+@dataclass(frozen=True)
+class RectifiedPanel:
+    """A panel warped to a millimetre grid.
+
+    Attributes
+    ----------
+    linear : (R, C, 3) ndarray of float32
+        Linear-light RGB on the grid; pixel (r, c) has its centre at
+        ((c + 0.5) / px_per_mm, (r + 0.5) / px_per_mm) mm from the top-left corner.
+    px_per_mm : float
+        Grid resolution.
+    size_mm : (width_mm, height_mm)
+        Panel size as it lies in the photo (portrait or landscape).
+    scale : ScaleCalibration
+        The rectangle calibration (homography image px -> panel mm).
+    """
+
+    linear: np.ndarray
+    px_per_mm: float
+    size_mm: tuple[float, float]
+    scale: ScaleCalibration
+
+
+def rectify_panel(rgb: np.ndarray, corners_xy: np.ndarray, size_mm: tuple[float, float],
+                  px_per_mm: float = 10.0) -> RectifiedPanel:
+    """Warp one panel to the nominal size at ``px_per_mm`` in linear light.
+
+    Only the panel's bounding box is decoded to linear light, so a large photo
+    costs little more than the panels in it.
+    """
+    cal = scale_from_rectangle(corners_xy, size_mm[0], size_mm[1])
+    w_mm, h_mm = cal.details["width_mm"], cal.details["height_mm"]
+    rows, cols = rgb.shape[:2]
+    x0 = int(max(0, np.floor(corners_xy[:, 0].min()) - 3))
+    y0 = int(max(0, np.floor(corners_xy[:, 1].min()) - 3))
+    x1 = int(min(cols, np.ceil(corners_xy[:, 0].max()) + 4))
+    y1 = int(min(rows, np.ceil(corners_xy[:, 1].max()) + 4))
+    crop = linearize(rgb[y0:y1, x0:x1])
+    shift = np.array([[1, 0, x0], [0, 1, y0], [0, 0, 1]], dtype=np.float64)
+    lin = warp_to_mm_grid(crop, cal.homography @ shift, (w_mm, h_mm), px_per_mm)
+    return RectifiedPanel(lin.astype(np.float32, copy=False), float(px_per_mm), (w_mm, h_mm), cal)
+
+
+def read_qr_codes(rgb: np.ndarray, quads: list[PanelQuad], grow: float = 0.25) -> dict[int, tuple[str, np.ndarray]]:
+    """Decode QR codes on or beside each panel (OpenCV's QRCodeDetector).
+
+    Each panel's region, grown by ``grow`` of its size to take in a holder
+    label, is searched; returns panel index -> (text, QR corners xy in the photo).
+    """
+    det = cv2.QRCodeDetector()
+    out: dict[int, tuple[str, np.ndarray]] = {}
+    scored: dict[int, tuple[float, str, np.ndarray]] = {}
+    rows, cols = rgb.shape[:2]
+    for i, q in enumerate(quads):
+        c = q.corners_xy
+        span = c.max(axis=0) - c.min(axis=0)
+        x0, y0 = np.maximum(0, np.floor(c.min(axis=0) - grow * span)).astype(int)
+        x1, y1 = np.minimum([cols, rows], np.ceil(c.max(axis=0) + grow * span)).astype(int)
+        grey = cv2.cvtColor(np.ascontiguousarray(rgb[y0:y1, x0:x1]), cv2.COLOR_RGB2GRAY)
+        u8 = np.clip(np.rint(grey * 255.0), 0, 255).astype(np.uint8)
+        # QR modules can be only a few pixels in a tray photo: upsample small crops
+        up = 2.0 if max(u8.shape) < 1500 else 1.0
+        if up > 1:
+            u8 = cv2.resize(u8, None, fx=up, fy=up, interpolation=cv2.INTER_CUBIC)
+        try:
+            ok, texts, pts, _ = det.detectAndDecodeMulti(u8)
+        except cv2.error:
+            ok = False
+        if not ok:
+            continue
+        best = None
+        for text, p in zip(texts, pts):
+            if not text:
+                continue
+            p_xy = np.asarray(p, np.float64).reshape(4, 2) / up + (x0, y0)
+            centre = p_xy.mean(axis=0)
+            inside = cv2.pointPolygonTest(c.astype(np.float32).reshape(-1, 1, 2), tuple(map(float, centre)), True)
+            if best is None or inside > best[0]:
+                best = (inside, text, p_xy)
+        if best is not None:
+            scored[i] = best
+    # a holder label between two panels belongs to the panel it is nearest to (or inside)
+    for i, (score, text, p_xy) in scored.items():
+        rivals = [j for j, b in scored.items() if b[1] == text and b[0] > score]
+        if not rivals:
+            out[i] = (text, p_xy)
+    return out

@@ -1,0 +1,114 @@
+"""``coupon panels`` end to end: outputs, identities, exposure times, bad input, resume."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from coupon.cli.panels import PANEL_COLUMNS, hours_from_name
+from coupon.synth.panels import PanelSpec, TraySettings, tray_scene
+from tests.conftest import invoke, write_rgb
+
+SMALL = TraySettings(image_wh=(1400, 1200), cols=2, tilt_x_deg=8, tilt_y_deg=-5)
+SPECS = [PanelSpec("white", ("general",), qr_text="BW-2-C"), PanelSpec("grey", ("spots",), scribe="line", creep_mm=1.5)]
+
+
+@pytest.fixture(scope="module")
+def tray_file(tmp_path_factory):
+    d = tmp_path_factory.mktemp("trays")
+    img, truth = tray_scene(SPECS, seed=21, settings=SMALL)
+    return write_rgb(d / "rack2_0240h.jpg", img), truth
+
+
+def test_hours_from_file_name():
+    from pathlib import Path
+
+    assert hours_from_name(Path("rack2_0240h.jpg")) == 240.0
+    assert hours_from_name(Path("tray_168h_b.png")) == 168.0
+    assert hours_from_name(Path("rack2.jpg")) is None
+
+
+@pytest.mark.slow
+def test_end_to_end_outputs(runner, tray_file, tmp_path):
+    path, truth = tray_file
+    layout = tmp_path / "layout.csv"
+    layout.write_text("row,col,panel_id,system,replicate\n1,1,X-1,BW-9,1\n1,2,BW-1-B,BW-1,2\n")
+    res = invoke(runner, ["panels", path, "--out", tmp_path / "out", "--layout", layout])
+    assert res.exit_code == 0, res.output
+    table = pd.read_csv(tmp_path / "out" / "panels.csv", dtype={"panel_id": str})
+    assert list(table.columns) == PANEL_COLUMNS
+    assert len(table) == 2
+    assert (table["status"] == "ok").all()
+    # QR overrides the layout; the layout names the other panel
+    assert table["panel_id"].tolist() == ["BW-2-C", "BW-1-B"]
+    assert table["id_source"].tolist() == ["qr", "layout"]
+    assert table["system"].fillna("").tolist() == ["BW-9", "BW-1"]
+    assert (table["exposure_h"] == 240).all()
+    assert table["scribe_found"].tolist() == [False, True]
+    centre = truth["panels"][1]["centre_img_xy"]
+    assert abs(table.loc[1, "x_px"] - centre[0]) < 2 and abs(table.loc[1, "y_px"] - centre[1]) < 2
+    js = json.loads((tmp_path / "out" / "panels" / "rack2_0240h_BW-1-B.json").read_text())
+    assert js["coupon_version"] and "settings" in js and "profile_sha256" in js
+    assert len(js["creep_stations"]) > 50
+    assert (tmp_path / "out" / "overlays" / "rack2_0240h_BW-1-B.png").exists()
+    # resume: a second run skips the image; --force redoes it
+    res2 = invoke(runner, ["panels", path, "--out", tmp_path / "out", "--layout", layout])
+    assert "already rated" in res2.output and res2.exit_code == 0
+    res3 = invoke(runner, ["panels", path, "--out", tmp_path / "out", "--layout", layout, "--force", "--hours", "96"])
+    assert "already rated" not in res3.output
+    # the manifest beats --hours
+    man = tmp_path / "m.csv"
+    man.write_text(f"image,exposure_h\n{path.name},504\n")
+    invoke(runner, ["panels", path, "--out", tmp_path / "out", "--manifest", man, "--hours", "96", "--no-qr"])
+    t2 = pd.read_csv(tmp_path / "out" / "panels.csv")
+    assert (t2["exposure_h"] == 504).all()
+    assert t2["panel_id"].tolist() == ["R1C1", "R1C2"]
+
+
+def test_layout_naming_a_position_twice(runner, tmp_path):
+    layout = tmp_path / "layout.csv"
+    layout.write_text("row,col,panel_id\n1,1,A\n1,2,B\n1,1,C\n")
+    img = tmp_path / "a.png"
+    img.write_bytes(b"")
+    res = invoke(runner, ["panels", img, "--out", tmp_path / "out", "--layout", layout])
+    assert res.exit_code == 2
+    assert "position row 1, col 1 is named twice (lines 2 and 4)" in res.output
+
+
+@pytest.mark.slow
+def test_bad_inputs_in_a_batch(runner, tray_file, tmp_path):
+    good, _ = tray_file
+    broken = tmp_path / "broken.jpg"
+    broken.write_bytes(b"\xff\xd8\xff\xe0 not really a jpeg")
+    empty = write_rgb(tmp_path / "empty_tray.png", np.full((400, 500, 3), 0.3, np.float32))
+    img, _ = tray_scene([PanelSpec("white", ("general",))], seed=5,
+                        settings=TraySettings(image_wh=(600, 700), cols=1, shift_mm=(-110, 0)))
+    cut = write_rgb(tmp_path / "cut_off.jpg", img)
+    res = invoke(runner, ["panels", broken, good, empty, cut, "--out", tmp_path / "out"])
+    assert res.exit_code == 1
+    table = pd.read_csv(tmp_path / "out" / "panels.csv")
+    status = dict(zip(table["image"].map(lambda s: s.split("/")[-1]), table["status"]))
+    assert "broken.jpg" in res.output and "Traceback" not in res.output
+    assert status["empty_tray.png"].endswith("no panel found: nothing stands out from the tray; check that the "
+                                             "panels are in the frame and differ in colour from the tray")
+    assert status["cut_off.jpg"].startswith("panel partly outside the frame (touches the left edge)")
+    assert (table[table["image"] == str(good)]["status"] == "ok").all()
+    assert len(table[table["image"] == str(good)]) == 2
+
+
+@pytest.mark.slow
+def test_wrong_panel_size(runner, tray_file, tmp_path):
+    good, _ = tray_file
+    res = invoke(runner, ["panels", good, "--out", tmp_path / "out", "--panel-size", "100x100"])
+    assert res.exit_code == 1
+    table = pd.read_csv(tmp_path / "out" / "panels.csv")
+    assert table["status"].str.contains("panel sides are in ratio 1.9|panel sides are in ratio 2.0").all()
+
+
+def test_bad_mask_option(runner, tmp_path):
+    res = invoke(runner, ["panels", tmp_path / "x.jpg", "--out", tmp_path / "o", "--mask", "1,2"])
+    assert res.exit_code == 2
+    assert "give 4 numbers (x,y,w,h) for a rectangle or 3 (x,y,d) for a hole" in res.output

@@ -1,0 +1,168 @@
+"""Synthetic trays with known truth: detection, rectified area, rust area, grade, creep.
+
+Tolerances are those of the issue: every panel found; rust area within
+max(0.1 percentage points, 15 % relative); grade within one class; creep mean
+within 0.3 mm; rectified area within 1 % of the nominal size.
+"""
+
+from __future__ import annotations
+
+import cv2
+import numpy as np
+import pytest
+from scipy import ndimage as ndi
+
+from coupon.calibrate.scale import quad_area_px2
+from coupon.ratings.panel_ratings import rust_grade
+from coupon.segment.panels import PanelSettings, rate_panel
+from coupon.segment.panels.detect import find_panels, read_qr_codes, rectify_panel
+from coupon.synth.panels import PanelSpec, TraySettings, tray_scene, truth_creep, truth_rust
+
+TRAY_A = [
+    PanelSpec("white", ("spots",), scribe="line", creep_mm=2.0, qr_text="BW-1-A"),
+    PanelSpec("grey", ("general",), dirt=True, scribe="x", creep_mm=1.0),
+    PanelSpec("dark", ("general",), scribe="line", creep_mm=3.0),
+    PanelSpec("white", ("pinpoint",)),
+    PanelSpec("grey", ("streaks",), glare=True),
+    PanelSpec("green", ("general",), amount=0.5),
+]
+# perspective (tilts 12 and -8 degrees, roll 3), 25 % light gradient, noise, JPEG 92: the defaults
+SCENE = TraySettings()
+
+
+@pytest.fixture(scope="module")
+def tray_a():
+    img, truth = tray_scene(TRAY_A, seed=11, settings=SCENE)
+    quads = find_panels(img)
+    return img, truth, quads
+
+
+@pytest.fixture(scope="module")
+def rated_a(tray_a):
+    img, truth, quads = tray_a
+    settings = PanelSettings()
+    qr = read_qr_codes(img, quads)
+    out = []
+    for i, (q, p) in enumerate(zip(quads, truth["panels"])):
+        panel = rectify_panel(img, q.corners_xy, settings.size_mm, settings.px_per_mm)
+        boxes = []
+        if i in qr:
+            mm = cv2.perspectiveTransform(qr[i][1].reshape(-1, 1, 2), panel.scale.homography).reshape(-1, 2)
+            boxes.append((*(mm.min(axis=0) - 2), *(mm.max(axis=0) + 2)))
+        out.append((p, rate_panel(panel, settings, None, boxes)))
+    return out, qr
+
+
+def _rust_ok(measured_pct, truth_pct):
+    # issue 3 tolerance: max(0.1 percentage points, 15 % relative)
+    return abs(measured_pct - truth_pct) <= max(0.1, 0.15 * truth_pct)
+
+
+@pytest.mark.slow
+def test_every_panel_found_in_tray_order(tray_a):
+    img, truth, quads = tray_a
+    assert len(quads) == len(TRAY_A)
+    for q, p in zip(quads, truth["panels"]):
+        assert q.position == p["position"]
+        assert q.touches is None
+        assert np.max(np.linalg.norm(q.corners_xy - p["corners_img_xy"], axis=1)) < 1.5
+
+
+@pytest.mark.slow
+def test_rectified_area_within_one_percent_of_nominal(tray_a):
+    img, truth, quads = tray_a
+    for q, p in zip(quads, truth["panels"]):
+        # detected corners taken to the panel plane by the true camera: nominal 75 x 150 mm
+        mm = cv2.perspectiveTransform(q.corners_xy.reshape(-1, 1, 2), np.linalg.inv(p["hom_mm_to_img"]))
+        assert quad_area_px2(mm.reshape(-1, 2)) == pytest.approx(75 * 150, rel=0.01)
+
+
+@pytest.mark.slow
+def test_quad_area_against_analytic_shoelace(tray_a):
+    # reference: the analytic area of the projected true quadrilateral (shoelace in numpy)
+    img, truth, quads = tray_a
+    for q, p in zip(quads, truth["panels"]):
+        x, y = p["corners_img_xy"][:, 0], p["corners_img_xy"][:, 1]
+        analytic = 0.5 * abs(np.dot(x, np.roll(y, -1)) - np.dot(y, np.roll(x, -1)))
+        assert q.area_px2 == pytest.approx(analytic, rel=0.01)
+
+
+@pytest.mark.slow
+def test_rust_area_grade_and_creep_within_tolerance(rated_a):
+    rated, _ = rated_a
+    for p, res in rated:
+        tr = truth_rust(p, edge_mm=5.0)
+        name = f"{p['spec'].coating} {p['spec'].rust}"
+        assert _rust_ok(res["rust_area_pct"], tr["rust_area_pct"]), (name, res["rust_area_pct"], tr)
+        true_grade = int(rust_grade(tr["rust_area_pct"]))
+        assert abs(int(res["rust_grade"]) - true_grade) <= 1, name
+        assert res["rust_area_pct_unc"] > 0
+        tc = truth_creep(p)
+        assert res["scribe_found"] == (tc is not None), name
+        if tc is not None:
+            assert res["scribe_kind"] == p["spec"].scribe
+            assert abs(res["creep_mean_mm"] - tc["creep_mean_mm"]) <= 0.3, (name, res["creep_mean_mm"], tc)
+            assert res["creep_min_mm"] <= res["creep_mean_mm"] <= res["creep_max_mm"]
+
+
+@pytest.mark.slow
+def test_qr_identity_read(rated_a):
+    _, qr = rated_a
+    assert {i: t for i, (t, _) in qr.items()} == {0: "BW-1-A"}
+
+
+@pytest.mark.slow
+def test_site_count_matches_scipy_label(rated_a):
+    # reference library: scipy.ndimage.label (8-connectivity) of the same site mask
+    rated, _ = rated_a
+    for _, res in rated:
+        mask = res["_rust"].site_mask
+        _, n = ndi.label(mask, structure=np.ones((3, 3)))
+        assert res["rust_sites"] == n
+
+
+@pytest.mark.slow
+def test_distribution_letters_of_clear_cases(rated_a):
+    rated, _ = rated_a
+    letters = {p["spec"].rust: res["rust_distribution"] for p, res in rated}
+    assert letters[("general",)] == "G"
+    assert letters[("pinpoint",)] == "P"
+
+
+# Pinpoint rust on grey and dark coatings at about 3.7 px/mm in a JPEG photo: 4:2:0 chroma
+# subsampling removes most of the colour of a 1-2 px speck whose lightness matches the
+# coating, so it is missed.  Known limitation, kept visible.
+@pytest.mark.slow
+@pytest.mark.parametrize("coating", [
+    pytest.param("grey", marks=pytest.mark.xfail(strict=False, reason="pinpoint on grey often lost to JPEG chroma (seed-dependent)")),
+    pytest.param("dark", marks=pytest.mark.xfail(strict=False, reason="pinpoint on dark often lost to JPEG chroma (seed-dependent)")),
+])
+def test_pinpoint_on_grey_and_dark_coatings(coating):
+    img, truth = tray_scene([PanelSpec(coating, ("pinpoint",))], seed=12,
+                            settings=TraySettings(image_wh=(700, 1000), cols=1))
+    q = find_panels(img)[0]
+    res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
+    assert _rust_ok(res["rust_area_pct"], truth_rust(truth["panels"][0], 5.0)["rust_area_pct"])
+
+
+def test_pinpoint_without_jpeg_on_dark_coating():
+    # without the codec the sub-pixel fractions recover pinpoint rust on a dark coating
+    img, truth = tray_scene([PanelSpec("dark", ("pinpoint",))], seed=12,
+                            settings=TraySettings(image_wh=(700, 1000), cols=1, jpeg_quality=None))
+    q = find_panels(img)[0]
+    res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
+    tr = truth_rust(truth["panels"][0], 5.0)
+    assert _rust_ok(res["rust_area_pct"], tr["rust_area_pct"]), (res["rust_area_pct"], tr)
+    # whole-pixel counting is far off on pinpoint rust: the reason for the unmixing
+    assert res["rust_pixel_count_pct"] > 1.5 * tr["rust_area_pct"]
+
+
+def test_clean_panel_rates_10():
+    img, truth = tray_scene([PanelSpec("white", (), dirt=True, glare=True)], seed=13,
+                            settings=TraySettings(image_wh=(700, 1000), cols=1))
+    q = find_panels(img)[0]
+    res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
+    # dirt and glare are not rust (ASTM D610-08: dirt and deposits are not rust)
+    assert res["rust_area_pct"] < 0.03
+    assert int(res["rust_grade"]) >= 9
+    assert not res["scribe_found"]
