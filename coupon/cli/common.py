@@ -5,6 +5,7 @@ from __future__ import annotations
 import sys
 import traceback
 import warnings
+from pathlib import Path
 
 import click
 
@@ -94,3 +95,26 @@ def parse_size(text: str, param_hint: str, integer: bool = False) -> tuple[float
     if a <= 0 or b <= 0:
         raise click.BadParameter(f"{text!r}: both sizes must be positive", param_hint=param_hint)
     return a, b
+
+
+# -- campaign database --------------------------------------------------------
+
+def db_option(f):
+    """``--db PATH``: the campaign database every analysis command also writes to."""
+    return click.option(
+        "--db", "db_path", type=click.Path(dir_okay=False, path_type=Path),
+        help="Campaign database (SQLite) to record the results in [default: coupon.db in --out or its "
+             "parent folder if one exists there, else created in --out].")(f)
+
+
+def record_rows(db, command: str, image, sha256: str | None, settings: dict, profile_sha256: str | None,
+                tables: dict, **keys) -> bool:
+    """Record one image's rows in the campaign database; a failure is reported, not raised."""
+    from coupon.campaign.store import record_results
+
+    try:
+        record_results(db, command, image, sha256, settings, profile_sha256, tables, **keys)
+        return True
+    except CouponError as exc:
+        report_failure(f"{image}: not recorded in the database ({exc})")
+        return False

@@ -18,7 +18,7 @@ from coupon.calibrate.indicator import IndicatorModel
 from coupon.calibrate.profile import load_profile
 from coupon.calibrate.scale import check_px_per_mm
 from coupon.calibrate.shipped import default_indicator
-from coupon.cli.common import EXIT_FAILED, fail, report_failure
+from coupon.cli.common import EXIT_FAILED, db_option, fail, record_rows, report_failure
 from coupon.errors import AnalysisError, CouponError
 from coupon.io import frametimes as ft
 from coupon.io.atomic import write_csv, write_float_tiff, write_json
@@ -150,10 +150,11 @@ def _parse_t0(ctx, param, value):
               help="Write a pH picture per frame (the float TIFF is always written).")
 @click.option("--workers", default=1, show_default=True, type=click.IntRange(min=1), help="Processes.")
 @click.option("--force", is_flag=True, help="Redo frames already analysed into --out.")
+@db_option
 @click.option("--max-megapixels", type=click.FloatRange(min=0, min_open=True), default=DEFAULT_MAX_PIXELS / 1e6,
               show_default=True, help="Refuse larger images.")
 def droplet(frames, profile_path, out_dir, px_per_mm, acidic_below, basic_above, rings, interval_min, times_csv,
-            time_source, t0, frame_figures, workers, force, max_megapixels):
+            time_source, t0, frame_figures, workers, force, db_path, max_megapixels):
     """Droplet time-lapse: per frame the drop outline, its pH map, acidic / neutral / basic zones, rust
     and a radial pH profile; over the series the events (first acidic zone, first rust, peak acidity,
     evaporation rate) and pictures.
@@ -286,6 +287,7 @@ def droplet(frames, profile_path, out_dir, px_per_mm, acidic_below, basic_above,
         "caution": CAUTION,
     }
     write_json(out_dir / "droplet_summary.json", summary)
+    failed += _record_series(db_path, out_dir, frame_table, radial_rows, settings_record, summary)
     _echo_summary(ev, len(paths), len(ok), int(ok_drop.sum()), failures, out_dir)
     if len(ok) and not ok_drop.any():
         click.echo(f"error: no drop was found in any of the {len(ok)} readable frames: check that the frames show "
@@ -294,6 +296,37 @@ def droplet(frames, profile_path, out_dir, px_per_mm, acidic_below, basic_above,
         raise SystemExit(EXIT_FAILED)
     if failed or failures:
         raise SystemExit(EXIT_FAILED)
+
+
+def _record_series(db_path, out_dir: Path, frame_table: pd.DataFrame, radial_rows: list[dict],
+                   settings_record: dict, summary: dict) -> int:
+    """Record every analysed frame and the series summary in the campaign database; returns failures.
+
+    Frame numbers and times depend on the whole series, so every run records all frames (a rerun
+    replaces their rows); frames that failed to load keep their earlier rows.
+    """
+    from coupon.campaign.store import flat_row, resolve_db_path
+
+    db = resolve_db_path(out_dir, db_path)
+    series_key = str(out_dir)
+    profile_sha = summary["profile_sha256"]
+    failed = 0
+    by_file: dict[str, list[dict]] = {}
+    for rr in radial_rows:
+        by_file.setdefault(str(rr["file"]), []).append(rr)
+    for r in frame_table.to_dict("records"):
+        sha = r.get("sha256")
+        if not isinstance(sha, str) or not sha:
+            continue
+        failed += not record_rows(db, COMMAND, r["file"], sha, settings_record, profile_sha,
+                                  {"droplet": [r], "radial_profile": by_file.get(str(r["file"]), [])},
+                                  series=series_key)
+    keep = ("frames", "frames_ok", "frames_with_drop", "frames_failed", "time_source")
+    row = flat_row({"series": series_key, **{k: summary[k] for k in keep}, **summary["events"]})
+    failed += not record_rows(db, COMMAND, f"{out_dir}#series", None, settings_record, profile_sha,
+                              {"droplet_summary": [row]}, series=series_key)
+    click.echo(f"database: {db}")
+    return failed
 
 
 def _previous(out_dir: Path) -> tuple[dict, dict]:

@@ -13,7 +13,7 @@ import pandas as pd
 
 from coupon import __version__
 from coupon.calibrate.profile import Profile, load_profile
-from coupon.cli.common import EXIT_FAILED, fail, parse_numbers, parse_size, report_failure
+from coupon.cli.common import EXIT_FAILED, db_option, fail, parse_numbers, parse_size, record_rows, report_failure
 from coupon.errors import AnalysisError, CouponError
 from coupon.io.atomic import write_csv, write_json
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
@@ -254,11 +254,12 @@ Example:
               help="Resolution of the rectified panel.")
 @click.option("--workers", default=1, show_default=True, type=click.IntRange(min=1), help="Processes.")
 @click.option("--force", is_flag=True, help="Re-rate images already rated into --out.")
+@db_option
 @click.option("--max-megapixels", type=click.FloatRange(min=0, min_open=True), default=DEFAULT_MAX_PIXELS / 1e6,
               show_default=True, help="Refuse larger images.")
 def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, manifest_path, profile_path,
            scribe_mode, scribe_width_mm, scribe_end_mm, min_speck_mm2, grid_px_per_mm, workers, force,
-           max_megapixels):
+           db_path, max_megapixels):
     """Rate coated test panels in tray photos: rust area and grade (ASTM D610, ISO 4628-3), creepage
     from a scribe (ASTM D1654), one overlay and one JSON per panel, DIR/panels.csv.
 
@@ -291,15 +292,23 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
     by_image: dict[str, list[dict]] = {}
     for rec in old.to_dict("records"):
         by_image.setdefault(str(rec["image"]), []).append(rec)
+    from coupon.campaign.store import is_recorded, resolve_db_path
+
+    db = resolve_db_path(out_dir, db_path)
+    db_settings = {"settings": settings.to_dict(), "layout": str(layout_path) if layout_path else None}
+    profile_sha = profile.sha256 if profile else None
+    job = PanelsJob(settings, profile, out_dir, layout, hours, manifest, int(max_megapixels * 1e6))
+    failed = 0
     todo = []
     for p in paths:
         sha = file_sha256(p) if p.is_file() else ""
         if not force and sha and ledger.is_done(p, sha, digest) and str(p) in by_image:
             click.echo(f"{p}: already rated (use --force to redo)")
+            if not is_recorded(db, "panels", p, sha):  # a database added after the first run gets every image
+                failed += not record_rows(db, "panels", p, sha, db_settings, profile_sha,
+                                          {"panels": by_image[str(p)]}, exposure_h=job.exposure_for(p))
             continue
         todo.append(p)
-    job = PanelsJob(settings, profile, out_dir, layout, hours, manifest, int(max_megapixels * 1e6))
-    failed = 0
     for out in run_batch(todo, job, workers=workers, label="Rating panels"):
         if out.ok:
             rows = out.result
@@ -307,9 +316,11 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
             failed += bool(bad)
             for r in bad:
                 report_failure(f"{out.item} {r['position']}: {r['status']}")
-            if file_sha256(out.item):
-                outputs = [r[k] for r in rows for k in ("overlay", "json") if isinstance(r.get(k), str)]
-                ledger.record(out.item, file_sha256(out.item), digest, outputs, "ok" if not bad else "partial")
+            sha = file_sha256(out.item)
+            outputs = [r[k] for r in rows for k in ("overlay", "json") if isinstance(r.get(k), str)]
+            ledger.record(out.item, sha, digest, outputs, "ok" if not bad else "partial")
+            failed += not record_rows(db, "panels", out.item, sha, db_settings, profile_sha, {"panels": rows},
+                                      exposure_h=job.exposure_for(out.item))
             for r in rows:
                 if r["status"] == "ok":
                     extra = f", creep {r['creep_mean_mm']:.2f} mm" if r["scribe_found"] else ""
@@ -323,6 +334,6 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
         by_image[str(out.item)] = rows
     all_rows = [r for rows in by_image.values() for r in rows]
     write_csv(table_path, pd.DataFrame(all_rows, columns=PANEL_COLUMNS))
-    click.echo(f"table: {table_path}")
+    click.echo(f"table: {table_path}\ndatabase: {db}")
     if failed:
         raise SystemExit(EXIT_FAILED)

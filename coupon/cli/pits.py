@@ -12,7 +12,7 @@ import pandas as pd
 
 from coupon import __version__
 from coupon.calibrate.profile import load_profile
-from coupon.cli.common import EXIT_FAILED, fail, report_failure
+from coupon.cli.common import EXIT_FAILED, db_option, fail, record_rows, report_failure
 from coupon.errors import AnalysisError, CouponError
 from coupon.io.atomic import write_csv, write_json
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
@@ -168,11 +168,12 @@ def _fmt(x: float, spec: str) -> str:
               help="Metal density; the default is carbon steel (ASTM G1 appendix table).")
 @click.option("--workers", default=1, show_default=True, type=click.IntRange(min=1), help="Processes.")
 @click.option("--force", is_flag=True, help="Redo images already analysed into --out.")
+@db_option
 @click.option("--max-megapixels", type=click.FloatRange(min=0, min_open=True), default=DEFAULT_MAX_PIXELS / 1e6,
               show_default=True, help="Refuse larger images.")
 def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_look, min_contrast, whole_frame,
          height_map, height_unit, mass_loss_mg, exposed_area_cm2, hours, density_g_cm3, workers, force,
-         max_megapixels):
+         db_path, max_megapixels):
     """Pits on cleaned coupons: count, density, size, depth, spread, ASTM G46 ratings and,
     with the mass loss, the ASTM G1 corrosion rate and the pitting factor.
 
@@ -230,6 +231,11 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
         pd.DataFrame(columns=SUMMARY_COLUMNS)
     rows = {str(r["image"]): r for r in old.to_dict("records")}
     old_pits = pd.read_csv(pits_path) if pits_path.exists() else pd.DataFrame(columns=PITS_COLUMNS)
+    from coupon.campaign.store import is_recorded, resolve_db_path
+
+    db = resolve_db_path(out_dir, db_path)
+    db_settings = {"settings": settings.to_dict(), **base}
+    failed = 0
     todo, item_settings = [], {}
     for p in paths:
         hp = job.height_path(p)
@@ -240,9 +246,12 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
         sha = file_sha256(p) if p.is_file() else ""
         if not force and sha and ledger.is_done(p, sha, item_settings[str(p)]) and str(p) in rows:
             click.echo(f"{p}: already analysed (use --force to redo)")
+            if not is_recorded(db, "pits", p, sha):  # a database added after the first run gets every image
+                kept_pits = old_pits[old_pits["image"].astype(str) == str(p)].to_dict("records")
+                failed += not record_rows(db, "pits", p, sha, db_settings, profile_sha,
+                                          {"pits": kept_pits, "pit_summary": [rows[str(p)]]}, exposure_h=hours)
             continue
         todo.append(p)
-    failed = 0
     new_pits: dict[str, list[dict]] = {}
     for out in run_batch(todo, job, workers=workers, label="Pits"):
         key = str(out.item)
@@ -261,6 +270,8 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
                           f" pitting factor {_fmt(s['pitting_factor'], '.1f')}" if mass is not None else ""))
             rows[key] = s
             new_pits[key] = r["pits"]
+            failed += not record_rows(db, "pits", out.item, r["sha256"], db_settings, profile_sha,
+                                      {"pits": r["pits"], "pit_summary": [s]}, exposure_h=hours)
         else:
             failed += 1
             report_failure(out.error, out.trace)
@@ -272,7 +283,7 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
                        if len(t)], ignore_index=True) if (len(kept) or fresh) else pd.DataFrame(columns=PITS_COLUMNS)
     write_csv(pits_path, table)
     write_csv(summary_path, pd.DataFrame(list(rows.values()), columns=SUMMARY_COLUMNS))
-    click.echo(f"pits: {pits_path}\nsummary: {summary_path}")
+    click.echo(f"pits: {pits_path}\nsummary: {summary_path}\ndatabase: {db}")
     if failed:
         raise SystemExit(EXIT_FAILED)
 
