@@ -34,6 +34,7 @@ class DemoContext:
     small: bool = False
     summary: dict = field(default_factory=dict)
     images_dir: Path | None = None
+    report: Path | None = None  # set by the report step
 
     @property
     def images(self) -> Path:
@@ -151,9 +152,11 @@ SCENE_WRITERS: list[Callable[[DemoContext], object]] = [calibration_scenes]
 #: this module stays cheap).
 STEPS: list[tuple[str, Callable[[DemoContext], None] | str]] = [
     ("calibration", calibration_step),
+    ("campaign", "coupon.demo_campaign:campaign_setup_step"),
+    ("panels", "coupon.demo_panels:panels_step"),
     ("droplet", "coupon.demo_droplet:droplet_step"),
     ("pits", "coupon.demo_pits:pits_step"),
-    ("panels", "coupon.demo_panels:panels_step"),
+    ("report", "coupon.demo_campaign:report_step"),
 ]
 
 

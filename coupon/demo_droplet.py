@@ -18,14 +18,14 @@ import pandas as pd
 from coupon.synth.droplet import DropletSeriesSpec, droplet_series, public_truth, series_events
 
 TREATMENT = "BW-T2 phosphate rinse (invented)"
+MACRO_PX_PER_MM = 30.0
 
 
 def droplet_step(ctx) -> None:
-    from coupon.calibrate.profile import load_profile
-
-    prof = load_profile(ctx.profile)
-    ppm = prof.scale.px_per_mm if prof.scale is not None else 10.0
-    # the demo camera's scale is about 10 px/mm: a 10 mm drop is about 100 px across
+    # colour and indicator come from the bench profile; droplets are photographed through a macro
+    # lens at about 30 px/mm (a 10 mm drop ~300 px across), not with the bench camera of the
+    # profile's scale, so the scale is given on the command line
+    ppm = MACRO_PX_PER_MM
     n = 5 if ctx.small else 10
     spec = DropletSeriesSpec(n_frames=n, interval_min=45.0 / (n - 1), image_wh=(int(18 * ppm), int(16 * ppm)),
                              px_per_mm=ppm, jpeg_quality=None, develop_min=10.0, acid_peak_min=30.0)
@@ -37,7 +37,7 @@ def droplet_step(ctx) -> None:
         ctx.save_scene(name, rgb, truth, quality=92)
         truths.append(truth)
     out = ctx.results / "droplet_BW-T2"
-    ctx.run(["droplet", folder, "--profile", ctx.profile, "--out", out])
+    ctx.run(["droplet", folder, "--profile", ctx.profile, "--px-per-mm", ppm, "--out", out])
 
     table = pd.read_csv(out / "droplet.csv")
     summary = json.loads((out / "droplet_summary.json").read_text())

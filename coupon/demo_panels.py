@@ -20,14 +20,24 @@ SYSTEMS = {  # coating colour, rust kind, growth of rust and creep per 1000 h (i
 }
 
 
+def replicates(ctx) -> int:
+    """Replicate panels per system (the campaign step lays out the same IDs)."""
+    return 2 if ctx.small else 3
+
+
+def inspection_hours(ctx) -> list[int]:
+    """Exposure hours of the tray photos (the campaign step schedules the same)."""
+    return [0, 720] if ctx.small else [0, 168, 336, 504, 720]
+
+
 def panels_step(ctx) -> None:
-    hours = [0, 720] if ctx.small else [0, 168, 336, 504, 720]
-    replicates = 2 if ctx.small else 3
+    hours = inspection_hours(ctx)
+    n_rep = replicates(ctx)
     wh = (1200, 950) if ctx.small else (1500, 1150)
     layout_rows, images, errs = [], [], {"rust_pp": [], "creep_mm": []}
     n_cols = len(SYSTEMS)
     for col, system in enumerate(SYSTEMS, start=1):
-        for rep in range(1, replicates + 1):
+        for rep in range(1, n_rep + 1):
             layout_rows.append({"row": rep, "col": col, "panel_id": f"{system}-{rep}", "system": system,
                                 "replicate": rep})
     ctx.images.mkdir(parents=True, exist_ok=True)
@@ -36,7 +46,7 @@ def panels_step(ctx) -> None:
     truths = {}
     for k, h in enumerate(hours):
         specs = []
-        for rep in range(1, replicates + 1):
+        for rep in range(1, n_rep + 1):
             for system, (coat, kinds, rust_rate, creep_rate) in SYSTEMS.items():
                 amount = rust_rate * h / 1000
                 specs.append(PanelSpec(coat, kinds if amount > 0 else (), amount=max(amount, 0.01), scribe="line",

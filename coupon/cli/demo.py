@@ -21,3 +21,5 @@ def demo(out_dir: Path, small: bool) -> None:
 
     ctx = run_demo(out_dir, small=small)
     click.echo(f"demo finished in {ctx.summary['seconds']} s; results in {ctx.results}")
+    if ctx.report is not None:
+        click.echo(f"report: {ctx.report}")
