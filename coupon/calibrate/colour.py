@@ -192,6 +192,21 @@ def fit_colour_matrix(
     return ColourCorrection(g, matrix, dict(zip(names, map(float, de))), {"kind": kind, "patches": len(de)})
 
 
+def table_lab(table: pd.DataFrame, what: str, path) -> np.ndarray:
+    """CIELAB (D65) of a table's colour columns: ``L, a, b``, or ``R, G, B`` as 8-bit sRGB."""
+    from coupon.errors import CouponError
+
+    if {"L", "a", "b"} <= set(table.columns):
+        lab = table[["L", "a", "b"]].to_numpy(dtype=float)
+    elif {"R", "G", "B"} <= set(table.columns):
+        lab = cs.srgb_to_lab(table[["R", "G", "B"]].to_numpy(dtype=float) / 255.0)
+    else:
+        raise CouponError(f"{what} needs colour columns L,a,b (CIELAB D65) or R,G,B (sRGB 0-255)", path)
+    if not np.all(np.isfinite(lab)):
+        raise CouponError(f"{what} has empty or non-numeric colours", path)
+    return lab
+
+
 def read_patch_table(path) -> pd.DataFrame:
     """Read a patch CSV: ``name, x_px, y_px, w_px, h_px`` and ``L, a, b`` or ``R, G, B`` (8-bit sRGB).
 
@@ -208,14 +223,7 @@ def read_patch_table(path) -> pd.DataFrame:
     missing = [c for c in box if c not in table.columns]
     if missing:
         raise CouponError(f"patch table lacks columns {missing}; expected name,x_px,y_px,w_px,h_px and L,a,b or R,G,B", path)
-    if {"L", "a", "b"} <= set(table.columns):
-        lab = table[["L", "a", "b"]].to_numpy(dtype=float)
-    elif {"R", "G", "B"} <= set(table.columns):
-        lab = cs.srgb_to_lab(table[["R", "G", "B"]].to_numpy(dtype=float) / 255.0)
-    else:
-        raise CouponError("patch table needs reference colour columns L,a,b (CIELAB D65) or R,G,B (sRGB 0-255)", path)
-    if not np.all(np.isfinite(lab)):
-        raise CouponError("patch table has empty or non-numeric reference colours", path)
+    lab = table_lab(table, "patch table", path)
     out = table.copy()
     if "name" not in out.columns:
         out["name"] = [f"patch{i + 1}" for i in range(len(out))]

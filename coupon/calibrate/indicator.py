@@ -450,10 +450,6 @@ def read_indicator_table(path) -> tuple[np.ndarray, np.ndarray, dict]:
     table.columns = [c.strip() for c in table.columns]
     if "ph" not in table.columns:
         raise CouponError("indicator table needs a 'ph' column and L,a,b or R,G,B columns", path)
-    if {"L", "a", "b"} <= set(table.columns):
-        lab = table[["L", "a", "b"]].to_numpy(dtype=float)
-    elif {"R", "G", "B"} <= set(table.columns):
-        lab = cs.srgb_to_lab(table[["R", "G", "B"]].to_numpy(dtype=float) / 255.0)
-    else:
-        raise CouponError("indicator table needs colour columns L,a,b (CIELAB) or R,G,B (sRGB 0-255)", path)
-    return table["ph"].to_numpy(dtype=float), lab, {"comments": comments}
+    from coupon.calibrate.colour import table_lab
+
+    return table["ph"].to_numpy(dtype=float), table_lab(table, "indicator table", path), {"comments": comments}
