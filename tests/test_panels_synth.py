@@ -129,20 +129,35 @@ def test_distribution_letters_of_clear_cases(rated_a):
     assert letters[("pinpoint",)] == "P"
 
 
-# Pinpoint rust on grey and dark coatings at about 3.7 px/mm in a JPEG photo: 4:2:0 chroma
-# subsampling removes most of the colour of a 1-2 px speck whose lightness matches the
-# coating, so it is missed.  Known limitation, kept visible.
+# Pinpoint rust on grey and dark coatings at about 4.3 px/mm in a JPEG photo: 4:2:0 chroma
+# subsampling removes most of the colour of a 1-2 px speck.  On grey the lightness test (full
+# resolution lightness, rust identity from pooled chroma) recovers it; on dark coatings the
+# per-pixel colour test finds the bright specks but JPEG ringing around them over-counts on
+# some seeds (measured numbers in the xfail reason; issue 3 tolerance).
 @pytest.mark.slow
-@pytest.mark.parametrize("coating", [
-    pytest.param("grey", marks=pytest.mark.xfail(strict=False, reason="pinpoint on grey often lost to JPEG chroma (seed-dependent)")),
-    pytest.param("dark", marks=pytest.mark.xfail(strict=False, reason="pinpoint on dark often lost to JPEG chroma (seed-dependent)")),
+@pytest.mark.parametrize("coating, seed", [
+    ("grey", 12), ("grey", 14), ("dark", 12),
+    pytest.param("dark", 14, marks=pytest.mark.xfail(
+        reason="dark coating, seed 14: measured 0.490 % vs truth 0.363 % (tolerance 0.1 pp): JPEG ringing "
+               "around bright specks adds false sites (382 sites found, 260 painted)")),
 ])
-def test_pinpoint_on_grey_and_dark_coatings(coating):
-    img, truth = tray_scene([PanelSpec(coating, ("pinpoint",))], seed=12,
+def test_pinpoint_on_grey_and_dark_coatings(coating, seed):
+    img, truth = tray_scene([PanelSpec(coating, ("pinpoint",))], seed=seed,
                             settings=TraySettings(image_wh=(700, 1000), cols=1))
     q = find_panels(img)[0]
     res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
-    assert _rust_ok(res["rust_area_pct"], truth_rust(truth["panels"][0], 5.0)["rust_area_pct"])
+    tr = truth_rust(truth["panels"][0], 5.0)["rust_area_pct"]
+    assert _rust_ok(res["rust_area_pct"], tr), (coating, seed, res["rust_area_pct"], tr)
+
+
+def test_grey_dirt_is_not_rust_for_the_lightness_test():
+    # dirt: darker and neutral (no chroma lean); the lightness test must not take it for rust
+    # (ASTM D610-08: dirt is not rust)
+    img, _ = tray_scene([PanelSpec("grey", (), dirt=True)], seed=16,
+                        settings=TraySettings(image_wh=(700, 1000), cols=1))
+    q = find_panels(img)[0]
+    res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
+    assert res["rust_area_pct"] < 0.03, res["rust_area_pct"]
 
 
 def test_pinpoint_without_jpeg_on_dark_coating():

@@ -382,6 +382,10 @@ class TraySettings:
     roll_deg: float = 3.0
     light: float = 0.25
     noise: float = 0.008
+    #: camera-like texture at the photo's own resolution (0 = off): relative strength of a fine
+    #: surface grain (paint and tray texture finer than the painted planes) and of the
+    #: luminance-correlated part of the sensor noise (demosaicing correlates the channels)
+    grain: float = 0.0
     jpeg_quality: int | None = 92
     plane_px_per_mm: float = 12.0
     max_rotation_deg: float = 2.0
@@ -447,11 +451,34 @@ def tray_scene(panels: list[PanelSpec], seed: int = 0, settings: TraySettings = 
     field_ = common.lighting_field(img.shape[:2], st.light, angle_deg=float(rng.uniform(0, 360)), vignette=0.08)
     img = img * field_[..., None]
     rgb = cs.linear_to_srgb(np.clip(img, 0, 1)).astype(np.float32)
-    rgb = common.sensor_noise(rgb, rng, st.noise)
+    if st.grain > 0:
+        rgb = _camera_grain(rgb, rng, st.grain, st.noise)
+    else:
+        rgb = common.sensor_noise(rgb, rng, st.noise)
     if st.jpeg_quality:
         rgb = common.jpeg_roundtrip(rgb, st.jpeg_quality)
     return rgb, {"panels": out_panels, "hom_tray_mm_to_img": hom_tray, "px_per_mm": px_per_mm,
                  "tray_size_mm": (tray_w, tray_h), "settings": st}
+
+
+def _camera_grain(rgb: np.ndarray, rng: np.random.Generator, grain: float, noise: float) -> np.ndarray:
+    """Fine surface grain and camera-like sensor noise, at the photo's resolution (sRGB, float32).
+
+    A camera photo is textured down to the pixel: paint and plastic grain, and
+    noise that demosaicing spreads over about a pixel and shares between the
+    channels.  Without it a synthetic JPEG is unusually smooth (few bits, fast
+    to decode).  ``grain`` is the relative strength of the surface texture;
+    ``noise`` the standard deviation of the sensor noise (sRGB units), of which
+    about 70 % of the variance is common to the three channels.
+    """
+    rows, cols = rgb.shape[:2]
+    tex = cv2.GaussianBlur(rng.standard_normal((rows, cols), dtype=np.float32), (0, 0), 0.8)
+    tex *= np.float32(grain / max(float(tex.std()), 1e-6))
+    out = rgb * (1 + tex[..., None])
+    common_part = rng.standard_normal((rows, cols), dtype=np.float32) * np.float32(0.85 * noise)
+    out += common_part[..., None]
+    out += rng.standard_normal(rgb.shape, dtype=np.float32) * np.float32(0.5 * noise)
+    return np.clip(out, 0, 1)
 
 
 def truth_summary(truth: dict, edge_mm: float = 5.0) -> dict:

@@ -112,11 +112,35 @@ def _lin(srgb) -> np.ndarray:
     return cs.srgb_to_linear(np.asarray(srgb, dtype=np.float64))
 
 
+#: Pixels sampled for robust statistics (medians); 20 000 give a median to well under 1 % of the noise.
+_SAMPLE_PX = 20000
+
+#: Luma weights (ITU-R BT.601, the weights JPEG's Y channel uses), applied here in linear light.
+_LUMA = np.array([0.299, 0.587, 0.114])
+
+#: Side of the neighbourhood (mm) over which chroma is pooled: about one JPEG 4:2:0 chroma sample
+#: plus its upsampling smear in a tray photo at 3 to 5 px/mm.
+CHROMA_POOL_MM = 0.6
+
+
+def _sample_idx(mask: np.ndarray, n: int = _SAMPLE_PX) -> np.ndarray:
+    idx = np.flatnonzero(mask)
+    return idx[:: max(1, idx.size // n)]
+
+
+def _robust(values: np.ndarray) -> tuple[float, float]:
+    """Median and MAD-based standard deviation."""
+    if values.size == 0:
+        return 0.0, 0.0
+    med = float(np.median(values))
+    return med, float(1.4826 * np.median(np.abs(values - med)))
+
+
 def coating_colour(lin: np.ndarray, valid: np.ndarray) -> np.ndarray:
     """Robust coating colour: median of the valid pixels, then of those near it in chromaticity."""
-    px = lin[valid][:: max(1, int(valid.sum() // 200000))].astype(np.float64)
-    if len(px) < 50:
-        px = lin.reshape(-1, 3).astype(np.float64)
+    flat = lin.reshape(-1, 3)
+    idx = _sample_idx(valid)
+    px = flat[idx].astype(np.float64) if idx.size >= 50 else flat[:: max(1, flat.shape[0] // _SAMPLE_PX)].astype(np.float64)
     c = np.median(px, axis=0)
     for _ in range(2):
         chroma = px / np.maximum(px.sum(axis=1, keepdims=True), 1e-6)
@@ -128,41 +152,23 @@ def coating_colour(lin: np.ndarray, valid: np.ndarray) -> np.ndarray:
     return np.maximum(c, 1e-5)
 
 
-def _cone_fit(dots: np.ndarray, pp: np.ndarray, gram: np.ndarray):
-    """Least squares p = alpha * e1 + beta * e2 from dot products; returns alpha, beta, residual^2."""
-    g11, g12, g22 = gram[0, 0], gram[0, 1], gram[1, 1]
-    det = g11 * g22 - g12 * g12
-    d1, d2 = dots[..., 0], dots[..., 1]
-    if det <= 1e-12 * g11 * g22:
-        # degenerate (e.g. a neutral coating with the grey direction): one direction only
-        alpha = d1 / g11
-        return alpha, np.zeros_like(alpha), pp - alpha * d1
-    alpha = (g22 * d1 - g12 * d2) / det
-    beta = (g11 * d2 - g12 * d1) / det
-    res = pp - (alpha * d1 + beta * d2)
-    return alpha, beta, res
-
-
 def _smooth_light(alpha: np.ndarray, clean: np.ndarray, px_per_mm: float) -> np.ndarray:
     """Quadratic fit of ``alpha`` over clean coating pixels (robust, on 2 mm blocks)."""
     rows, cols = alpha.shape
     f = min(1.0, 0.5 / px_per_mm)
     size = (max(4, int(round(cols * f))), max(4, int(round(rows * f))))
-    a_small = cv2.resize(np.where(clean, alpha, 0).astype(np.float32), size, interpolation=cv2.INTER_AREA)
-    w_small = cv2.resize(clean.astype(np.float32), size, interpolation=cv2.INTER_AREA)
+    cleanf = clean.astype(np.float32)
+    a_small = cv2.resize(alpha * cleanf, size, interpolation=cv2.INTER_AREA)
+    w_small = cv2.resize(cleanf, size, interpolation=cv2.INTER_AREA)
     ok = w_small > 0.9
-    vals = a_small[ok] / w_small[ok]
+    vals = (a_small[ok] / w_small[ok]).astype(np.float64)
     rr, cc = np.nonzero(ok)
     rs, cs_ = size[1], size[0]
-
-    def design(r, c):
-        y, x = r / rs - 0.5, c / cs_ - 0.5
-        return np.column_stack([np.ones_like(x), x, y, x * x, x * y, y * y])
-
     if vals.size < 12:
         level = float(np.median(alpha[clean])) if clean.any() else 1.0
         return np.full(alpha.shape, level, np.float32)
-    a = design(rr.astype(float), cc.astype(float))
+    y, x = rr / rs - 0.5, cc / cs_ - 0.5
+    a = np.column_stack([np.ones_like(x), x, y, x * x, x * y, y * y])
     keep = np.ones(vals.size, bool)
     coef = None
     for _ in range(3):
@@ -172,10 +178,34 @@ def _smooth_light(alpha: np.ndarray, clean: np.ndarray, px_per_mm: float) -> np.
         keep = np.abs(res) < 3 * mad
         if keep.sum() < 12:
             break
-    gy, gx = np.mgrid[0:rows, 0:cols].astype(np.float32)
-    y, x = (gy + 0.5) * f / rs - 0.5, (gx + 0.5) * f / cs_ - 0.5
-    light = coef[0] + coef[1] * x + coef[2] * y + coef[3] * x * x + coef[4] * x * y + coef[5] * y * y
+    # the quadratic evaluated separably (rows x columns broadcast): no coordinate grids
+    yv = ((np.arange(rows, dtype=np.float64) + 0.5) * f / rs - 0.5)[:, None]
+    xv = ((np.arange(cols, dtype=np.float64) + 0.5) * f / cs_ - 0.5)[None, :]
+    row_part = (coef[0] + coef[2] * yv + coef[5] * yv * yv).astype(np.float32)
+    slope = (coef[1] + coef[4] * yv).astype(np.float32)
+    light = row_part + slope * xv.astype(np.float32) + np.float32(coef[3]) * (xv * xv).astype(np.float32)
     return np.maximum(light, 1e-3).astype(np.float32)
+
+
+def _best_rust(q: np.ndarray, qq: np.ndarray, best_res: np.ndarray, rust_dev: list[np.ndarray]):
+    """Best rust colour per row of ``q`` (deviations from the coating): fraction, index, residual^2."""
+    best_f = np.full(q.shape[0], np.nan, np.float32)
+    best_k = np.full(q.shape[0], -1, np.int8)
+    for k, d in enumerate(rust_dev):
+        dd = float(d @ d)
+        qd = q @ d
+        f = np.clip(qd / dd, 0.0, 1.0)
+        res = qq - 2 * f * qd + f * f * dd
+        better = (f > 0) & (res < best_res)
+        best_res = np.where(better, res, best_res)
+        best_f = np.where(better, f, best_f)
+        best_k = np.where(better, np.int8(k), best_k)
+    return best_f, best_k, best_res
+
+
+def _channels(a: np.ndarray) -> np.ndarray:
+    # cv2.transform drops the channel axis when it gives one channel
+    return a[..., None] if a.ndim == 2 else a
 
 
 def unmix(lin: np.ndarray, valid: np.ndarray, px_per_mm: float,
@@ -193,66 +223,99 @@ def unmix(lin: np.ndarray, valid: np.ndarray, px_per_mm: float,
 
     Notes
     -----
-    The neutral cone is fitted to every pixel; the rust cones only to pixels
-    that leave the neutral cone by more than the noise (a few per cent of a
-    panel), which keeps a 10 px/mm panel fast.
+    A cheap pass over every pixel (one 3x3 colour transform) gives the
+    brightness along the coating colour and the distance from the neutral
+    plane; the rust cones are fitted only to the pixels that leave the neutral
+    plane by more than the noise (a few per cent of a panel).
+
+    Pinpoint rust after JPEG: 4:2:0 chroma subsampling keeps lightness per
+    pixel but chroma only per 2 x 2 block, so a 1 to 2 px speck keeps its
+    lightness contrast and loses most of its colour.  A second test therefore
+    pools chroma over :data:`CHROMA_POOL_MM` (the pooled deviation still
+    leans towards rust, while dirt stays neutral), picks the rust colour from
+    it, and unmixes the *lightness* per pixel against that colour's lightness.
     """
+    lin = np.ascontiguousarray(lin, dtype=np.float32)
     shape = lin.shape[:2]
     c = coating_colour(lin, valid) if coating_linear is None else np.asarray(coating_linear, np.float64)
     rust = [_lin(e) for e in endmembers_srgb]
     grey = np.ones(3) / np.sqrt(3)
-    cc = float(c @ c)
-    flat = lin.reshape(-1, 3)
-    # orthonormal basis of the neutral cone's plane: the coating direction, then grey
-    # minus its coating part (absent when the coating itself is grey)
-    u1 = c / np.sqrt(cc)
+    cn = float(np.sqrt(c @ c))
+    u1 = c / cn
     g_perp = grey - (grey @ u1) * u1
-    cols_ = [u1] + ([g_perp / np.linalg.norm(g_perp)] if np.linalg.norm(g_perp) > 0.03 else [])
-    proj = flat @ np.column_stack(cols_).astype(np.float32)
-    pp = np.einsum("ij,ij->i", flat, flat)
-    res_n = pp - np.einsum("ij,ij->i", proj, proj)
-
-    # brightness relative to the coating: projection on the coating colour
-    a_n = (proj[:, 0] / np.sqrt(cc)).reshape(shape).astype(np.float32)
-    # light level: the coating coefficient of the neutral cone, smoothed over the panel
+    plane = [u1] + ([g_perp / np.linalg.norm(g_perp)] if np.linalg.norm(g_perp) > 0.03 else [])
+    # normals of the neutral plane (one), or of the neutral line when the coating is grey (two)
+    _, _, vt = np.linalg.svd(np.array(plane))
+    normals = vt[len(plane):]
+    t = cv2.transform(lin, np.vstack([u1, normals]).astype(np.float32))
+    a_n = t[..., 0] / np.float32(cn)  # brightness relative to the coating
+    perp2 = (t[..., 1:] ** 2).sum(axis=2) if normals.shape[0] > 1 else t[..., 1] ** 2
     light = _smooth_light(a_n, valid, px_per_mm)
-    # distance from the neutral cone, relative to the local coating brightness
-    dev = (np.sqrt(np.maximum(res_n, 0)).reshape(shape) / (np.sqrt(cc) * light)).astype(np.float32)
-    ref = dev[valid][:: max(1, int(valid.sum() // 200000))]
-    med = float(np.median(ref)) if ref.size else 0.0
-    sigma = float(1.4826 * np.median(np.abs(ref - med))) if ref.size else 0.0
+    # distance from the neutral plane, relative to the local coating brightness
+    dev = np.sqrt(perp2) / (np.float32(cn) * light)
+    vidx = _sample_idx(valid)
+    med, sigma = _robust(dev.ravel()[vidx])
     noise_floor = med + 3 * sigma
-    neutral_dev = (1 - a_n / light).astype(np.float32)
+    neutral_dev = 1 - a_n / light
     fraction = neutral_dev.copy()
     score = np.zeros(shape, np.float32)
     rust_wins = np.zeros(shape, bool)
+    flat, lflat = lin.reshape(-1, 3), light.ravel()
+    c32 = c.astype(np.float32)
+    rust_dev = [(e - c).astype(np.float32) for e in rust]
     cand = np.flatnonzero(dev.ravel() > noise_floor)
     if cand.size:
         # with the light level known, unmix linearly: p / L = c + f (e - c) for each rust colour e;
-        # f is then robust to the coarse chroma of JPEG on light and on dark coatings alike
-        q = flat[cand] / light.ravel()[cand, None] - c.astype(np.float32)
-        qq = np.einsum("ij,ij->i", q, q)
         # a rust colour must explain the pixel clearly better than the neutral cone (dirt, glare)
-        best_res = RUST_WINS_RATIO * res_n[cand] / light.ravel()[cand] ** 2
-        best_f = np.full(cand.size, np.nan, np.float32)
-        for e in rust:
-            d = (e - c).astype(np.float32)
-            dd = float(d @ d)
-            f = np.clip((q @ d) / dd, 0.0, 1.0)
-            res = qq - 2 * f * (q @ d) + f * f * dd
-            better = (f > 0) & (res < best_res)
-            best_res = np.where(better, res, best_res)
-            best_f = np.where(better, f, best_f)
+        q = flat[cand] / lflat[cand, None] - c32
+        qq = np.einsum("ij,ij->i", q, q)
+        best_f, _, _ = _best_rust(q, qq, RUST_WINS_RATIO * perp2.ravel()[cand] / lflat[cand] ** 2, rust_dev)
         won = np.isfinite(best_f)
         idx = cand[won]
         rust_wins.ravel()[idx] = True
         fraction.ravel()[idx] = best_f[won]
         # score: distance from the neutral cone in noise units (how sure this is rust)
         score.ravel()[idx] = (dev.ravel()[idx] - med) / max(sigma, 1e-4)
+
+    # -- lightness at full resolution, rust identity from pooled chroma (JPEG-proof specks) --
+    luma = _LUMA.astype(np.float32)
+    y_c = float(c @ _LUMA)
+    dy = _channels(cv2.transform(lin, luma[None, :]))[..., 0] / light - np.float32(y_c)  # lightness deviation
+    y_med, y_sig = _robust(dy.ravel()[vidx])
+    k = 2 * int(round(CHROMA_POOL_MM / 2 * px_per_mm)) + 1
+    rust_y = np.array([float(e @ _LUMA) for e in rust])
+    # not on coatings darker than most rust colours (black, dark grey): there a speck's colour stays
+    # large against the coating's noise even after subsampling and the per-pixel test finds it,
+    # while the lightness test would add the JPEG ringing around the bright speck
+    if k >= 3 and y_sig > 0 and y_c > float(np.median(rust_y)):
+        # pooled deviation from the coating (per light level), and its distance from the neutral plane
+        qb = cv2.boxFilter(lin / light[..., None], -1, (k, k), normalize=True) - c32
+        tb = _channels(cv2.transform(qb, normals.astype(np.float32)))
+        dev_b = np.sqrt((tb ** 2).sum(axis=2)) / np.float32(cn)
+        b_med, b_sig = _robust(dev_b.ravel()[vidx])
+        strong = np.abs(dy - y_med) > 2 * y_sig
+        lean = dev_b > b_med + 3 * b_sig
+        cand_b = np.flatnonzero((strong & lean & ~rust_wins).ravel())
+        if cand_b.size and b_sig > 0:
+            qv = qb.reshape(-1, 3)[cand_b]
+            qq = np.einsum("ij,ij->i", qv, qv)
+            tb2 = (tb.reshape(-1, tb.shape[2])[cand_b] ** 2).sum(axis=1)
+            bf, bk, _ = _best_rust(qv, qq, RUST_WINS_RATIO * tb2, rust_dev)
+            ok = np.isfinite(bf)
+            ids, kk = cand_b[ok], bk[ok].astype(int)
+            d_y = np.array([float(d @ _LUMA) for d in rust_dev], np.float32)[kk]
+            f_l = (dy.ravel()[ids] - y_med) / d_y  # lightness unmixed against the chosen rust colour
+            good = (f_l > 0) & (np.abs(d_y) > 2 * y_sig)
+            ids, f_l, d_y = ids[good], f_l[good], d_y[good]
+            rust_wins.ravel()[ids] = True
+            fraction.ravel()[ids] = np.minimum(f_l, 1.0)
+            s_l = np.abs(dy.ravel()[ids] - y_med) / y_sig
+            s_b = (dev_b.ravel()[ids] - b_med) / b_sig
+            score.ravel()[ids] = np.minimum(s_l, s_b)
     clean = valid & ~rust_wins & (dev <= noise_floor)
-    refs = fraction[clean][:: max(1, int(clean.sum() // 200000))]
-    noise = float(np.median(np.abs(refs - np.median(refs))) * 1.4826) if refs.size else 0.0
-    return ColourModel(c, score, fraction, neutral_dev, light, rust_wins, noise)
+    refs = fraction.ravel()[_sample_idx(clean)]
+    _, noise = _robust(refs)
+    return ColourModel(c, score, fraction, neutral_dev.astype(np.float32), light, rust_wins, noise)
 
 
 @dataclass(frozen=True)
@@ -298,37 +361,48 @@ def _sites(model: ColourModel, rated: np.ndarray, px_per_mm: float, low: float, 
     n, labels = cv2.connectedComponents(grow.astype(np.uint8), connectivity=8)
     # keep a component when its colour evidence peaks above ``high`` and its summed
     # fraction stands out of the noise (a matched filter: sum > 5 sigma sqrt(n))
-    lab = labels.ravel()
+    gidx = np.flatnonzero(grow)  # the grow region is sparse: statistics on its pixels only
+    lab = labels.ravel()[gidx]
+    order = np.argsort(lab, kind="stable")
     peak = np.zeros(n, np.float32)
-    np.maximum.at(peak, lab, model.score.ravel())
-    total = np.bincount(lab, weights=model.fraction.ravel(), minlength=n)
+    if gidx.size:
+        sl, sv = lab[order], model.score.ravel()[gidx][order]
+        starts = np.flatnonzero(np.r_[True, sl[1:] != sl[:-1]])
+        peak[sl[starts]] = np.maximum.reduceat(sv, starts)
+    total = np.bincount(lab, weights=model.fraction.ravel()[gidx], minlength=n)
     count = np.bincount(lab, minlength=n)
     keep = (peak > high) & (total > 5 * sf * np.sqrt(count))
     keep[0] = False
     relabel = np.zeros(n, np.int32)
     relabel[keep] = np.arange(1, int(keep.sum()) + 1)
-    labels = relabel[labels]
     n = int(keep.sum()) + 1
     if n <= 1:
         return np.zeros(rated.shape, np.int32), np.zeros(0), np.zeros((0, 2)), 0.0
+    labels = relabel[labels]
     # halo: the faint rim of a speck (1 px) carries part of its area
-    halo = cv2.dilate(labels.astype(np.float32), np.ones((3, 3), np.uint8)).astype(np.int32)
-    halo = np.where((labels == 0) & rated, halo, labels)
+    lab_img = labels.astype(np.uint16 if n < 65535 else np.float32)
+    halo = cv2.dilate(lab_img, np.ones((3, 3), np.uint8))
+    hidx = np.flatnonzero((halo > 0).ravel())
+    hl = np.where(labels.ravel()[hidx] > 0, labels.ravel()[hidx], halo.ravel()[hidx].astype(np.int32))
+    inside = (labels.ravel()[hidx] > 0) | rated.ravel()[hidx]
+    hidx, hl = hidx[inside], hl[inside]
     # unclipped below (noise averages out); a fraction cannot exceed 1
-    frac = np.clip(model.fraction, -0.5, 1.0)
-    area_px = np.bincount(halo.ravel(), weights=frac.ravel(), minlength=n)[1:]
+    frac = np.clip(model.fraction.ravel()[hidx], -0.5, 1.0)
+    area_px = np.bincount(hl, weights=frac, minlength=n)[1:]
     area_mm2 = np.maximum(area_px, 0) / px_per_mm**2
     keep = area_mm2 >= min_speck_mm2
     remap = np.zeros(n, np.int32)
     remap[1:][keep] = np.arange(1, int(keep.sum()) + 1)
     labels = remap[labels]
-    halo = remap[halo]
-    rr, cc = np.mgrid[0:rated.shape[0], 0:rated.shape[1]]
-    cnt = np.bincount(labels.ravel(), minlength=keep.sum() + 1)[1:]
-    cy = np.bincount(labels.ravel(), weights=rr.ravel(), minlength=keep.sum() + 1)[1:] / np.maximum(cnt, 1)
-    cx = np.bincount(labels.ravel(), weights=cc.ravel(), minlength=keep.sum() + 1)[1:] / np.maximum(cnt, 1)
+    m = int(keep.sum()) + 1
+    sidx = np.flatnonzero(labels.ravel())
+    sl = labels.ravel()[sidx]
+    rr, cc = np.divmod(sidx, rated.shape[1])
+    cnt = np.bincount(sl, minlength=m)[1:]
+    cy = np.bincount(sl, weights=rr, minlength=m)[1:] / np.maximum(cnt, 1)
+    cx = np.bincount(sl, weights=cc, minlength=m)[1:] / np.maximum(cnt, 1)
     centroids = np.column_stack([(cx + 0.5) / px_per_mm, (cy + 0.5) / px_per_mm])
-    halo_px = float(((halo > 0) & (labels == 0)).sum() + (labels > 0).sum())
+    halo_px = float((remap[hl] > 0).sum())
     return labels.astype(np.int32), area_mm2[keep], centroids, halo_px
 
 
