@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import multiprocessing
 import os
 import sys
 import traceback
@@ -54,6 +55,20 @@ def _call(func: Callable, item: Any) -> ItemOutcome:
         )
 
 
+def _pool_context():
+    """Worker processes start from a clean server (forkserver) or fresh (spawn), never by forking
+    this process: a fork would inherit OpenCV's and BLAS's thread pools mid-use and can deadlock."""
+    methods = multiprocessing.get_all_start_methods()
+    return multiprocessing.get_context("forkserver" if "forkserver" in methods else "spawn")
+
+
+def _init_worker() -> None:
+    """One OpenCV thread per worker: N workers on N cores, not N thread pools fighting over them."""
+    import cv2
+
+    cv2.setNumThreads(1)
+
+
 def run_batch(
     items: Iterable[Any], func: Callable[[Any], Any], *, workers: int = 1, label: str = "Processing",
     progress: bool = True,
@@ -72,7 +87,8 @@ def run_batch(
                     bar.update(1)
                 yield out
         else:
-            with ProcessPoolExecutor(max_workers=workers) as pool:
+            with ProcessPoolExecutor(max_workers=workers, mp_context=_pool_context(),
+                                     initializer=_init_worker) as pool:
                 futures = [pool.submit(_call, func, it) for it in items]
                 for fut in futures:
                     out = fut.result()

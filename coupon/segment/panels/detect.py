@@ -241,25 +241,6 @@ def assign_positions(quads: list[PanelQuad]) -> list[PanelQuad]:
     return sorted(out, key=lambda q: q.position)
 
 
-def limit_threads_in_worker() -> bool:
-    """In a batch worker process, keep OpenCV (and BLAS/OpenMP started later) to one thread.
-
-    With ``--workers 2`` on two cores, each process running OpenCV's own thread
-    pool would oversubscribe the cores and the batch would run no faster than
-    one process.  Called by :func:`find_panels`; does nothing in the main
-    process (a single image may use every core).  Returns True when it limited.
-    """
-    import multiprocessing as mp
-    import os
-
-    if mp.parent_process() is None:
-        return False
-    cv2.setNumThreads(1)
-    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
-        os.environ.setdefault(var, "1")
-    return True
-
-
 def find_panels(rgb: np.ndarray, max_side_px: int = 1000, min_area_frac: float = 0.004) -> list[PanelQuad]:
     """Find every panel in a tray photo.
 
@@ -278,7 +259,6 @@ def find_panels(rgb: np.ndarray, max_side_px: int = 1000, min_area_frac: float =
         In tray order (row by row from the top left); empty when nothing stands
         out from the tray.
     """
-    limit_threads_in_worker()
     rows, cols = rgb.shape[:2]
     f = min(1.0, max_side_px / max(rows, cols))
     small = cv2.resize(rgb, (max(1, int(round(cols * f))), max(1, int(round(rows * f)))),
