@@ -33,7 +33,8 @@ def inspection_hours(ctx) -> list[int]:
 def panels_step(ctx) -> None:
     hours = inspection_hours(ctx)
     n_rep = replicates(ctx)
-    wh = (1200, 950) if ctx.small else (1500, 1150)
+    # about 5 px/mm on the panels: pinpoint rust on grey needs it (see the README)
+    wh = (1800, 1400) if ctx.small else (2600, 2000)
     layout_rows, images, errs = [], [], {"rust_pp": [], "creep_mm": []}
     n_cols = len(SYSTEMS)
     for col, system in enumerate(SYSTEMS, start=1):
