@@ -22,7 +22,7 @@ from typing import Callable
 import click
 import numpy as np
 
-from coupon.io.atomic import to_json_text, write_image, write_text
+from coupon.io.atomic import to_json_text, write_csv, write_image, write_text
 from coupon.io.images import to_uint8
 
 LAB_NAME = "Brackwater Coatings Test Laboratory (invented for the demo)"
@@ -70,8 +70,9 @@ class DemoContext:
             from coupon.io.atomic import atomic_path
 
             with atomic_path(path) as tmp:
-                cv2.imwrite(str(tmp), cv2.cvtColor(to_uint8(rgb), cv2.COLOR_RGB2BGR),
-                            [cv2.IMWRITE_JPEG_QUALITY, quality])
+                if not cv2.imwrite(str(tmp), cv2.cvtColor(to_uint8(rgb), cv2.COLOR_RGB2BGR),
+                                   [cv2.IMWRITE_JPEG_QUALITY, quality]):
+                    raise OSError(f"{path}: could not write the demo image")
         else:
             write_image(path, to_uint8(rgb))
         write_text(path.with_suffix(".truth.json"), to_json_text(_plain(truth)))
@@ -111,8 +112,7 @@ def calibration_scenes(ctx: DemoContext) -> dict:
     paths = {"target": ctx.save_scene("bench_target.jpg", img, truth), "target_truth": truth}
     chart, table = patch_chart_scene(seed=102, cast=cast)
     paths["chart"] = ctx.save_scene("bench_patch_chart.png", chart, {"cast": list(cast)})
-    paths["patches"] = ctx.images / "bench_patch_chart_patches.csv"
-    table.to_csv(paths["patches"], index=False, float_format="%.4f")
+    paths["patches"] = write_csv(ctx.images / "bench_patch_chart_patches.csv", table)
     buffers, btruth = buffer_strip_scene(BUFFER_PH, seed=103)
     paths["buffers"] = ctx.save_scene("buffers_universal.jpg", buffers, btruth)
     drops, dtruth = buffer_strip_scene(TEST_DROP_PH, seed=104, per_row=4)

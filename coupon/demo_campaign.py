@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 from coupon.demo import LAB_NAME, DemoContext
+from coupon.io.atomic import write_csv
 
 def specimens(ctx: DemoContext) -> list[dict]:
     """Every specimen of the demo campaign, with the IDs the analysis steps will report."""
@@ -51,7 +52,7 @@ def campaign_setup_step(ctx: DemoContext) -> None:
 
     layout = ctx.images / "campaign_specimens.csv"
     ctx.images.mkdir(parents=True, exist_ok=True)
-    pd.DataFrame(specimens(ctx)).to_csv(layout, index=False)
+    write_csv(layout, pd.DataFrame(specimens(ctx)))
     ctx.results.mkdir(parents=True, exist_ok=True)
     ctx.run(["campaign", "init", ctx.results, "--layout", layout, "--name", "Demo campaign BW-2026",
              "--lab", LAB_NAME, "--schedule-h", ",".join(map(str, inspection_hours(ctx))),

@@ -11,6 +11,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from coupon.io.atomic import write_csv
 from coupon.synth.panels import PanelSpec, TraySettings, tray_scene, truth_summary
 
 SYSTEMS = {  # coating colour, rust kind, growth of rust and creep per 1000 h (invented)
@@ -43,7 +44,7 @@ def panels_step(ctx) -> None:
                                 "replicate": rep})
     ctx.images.mkdir(parents=True, exist_ok=True)
     layout = ctx.images / "panels_layout.csv"
-    pd.DataFrame(layout_rows).to_csv(layout, index=False)
+    write_csv(layout, pd.DataFrame(layout_rows))
     truths = {}
     for k, h in enumerate(hours):
         specs = []

@@ -25,7 +25,8 @@ C01,SYS-B,1,,,
 
 
 def run(args):
-    return CliRunner().invoke(cli, [str(a) for a in args])
+    # exceptions are not caught: a crash fails the test instead of passing as "exit 1"
+    return CliRunner().invoke(cli, [str(a) for a in args], catch_exceptions=False)
 
 
 def test_init_writes_specimens_and_criteria_then_status(tmp_path):

@@ -111,7 +111,7 @@ def test_calibrate_scale_usage_errors_exit_2(runner, scenes, tmp_path):
 def test_calibrate_scale_no_board_found(runner, scenes, tmp_path):
     r = invoke(runner, ["calibrate", "scale", scenes["chart"], "--checker", "9x7", "--square-mm", "5",
                         "--profile", tmp_path / "p.json"])
-    _one_line_error(r, "no 9x7-square checkerboard found", str(scenes["chart"]) if False else "checkerboard")
+    _one_line_error(r, "no 9x7-square checkerboard found")
     assert not (tmp_path / "p.json").exists()
 
 
@@ -151,7 +151,7 @@ def test_calibrate_colour_and_indicator_then_phmap(runner, scenes, tmp_path):
 
 def test_phmap_without_indicator_warns_and_uses_generic_table(runner, scenes, tmp_path):
     prof = tmp_path / "p.json"
-    invoke(runner, ["calibrate", "scale", "--px-per-mm", "10", "--profile", prof])
+    assert invoke(runner, ["calibrate", "scale", "--px-per-mm", "10", "--profile", prof]).exit_code == 0
     r = invoke(runner, ["phmap", scenes["drops"], "--profile", prof, "--out", tmp_path / "o"])
     assert r.exit_code == 0, r.output
     assert "warning: no buffer calibration" in r.output
@@ -197,7 +197,7 @@ def test_bad_images_in_every_calibrate_command(runner, bad_files, tmp_path, kind
 
 def test_phmap_batch_goes_on_after_bad_files(runner, bad_files, scenes, tmp_path):
     prof = tmp_path / "p.json"
-    invoke(runner, ["calibrate", "indicator", scenes["buffers"], "--ph", BUFFERS, "--profile", prof])
+    assert invoke(runner, ["calibrate", "indicator", scenes["buffers"], "--ph", BUFFERS, "--profile", prof]).exit_code == 0
     out = tmp_path / "out"
     files = [bad_files["empty"], scenes["drops"], bad_files["text"], bad_files["truncated"]]
     r = invoke(runner, ["phmap", *files, "--profile", prof, "--out", out])
@@ -280,3 +280,36 @@ def test_shipped_target_is_current(tmp_path):
     assert sc.px_per_mm == pytest.approx(600 / 25.4, rel=0.005)
     meta = json.loads((calibration_dir() / "targets" / "README.json").read_text())
     assert meta["squares"] == [9, 7] and meta["square_mm"] == 5.0
+
+
+def test_patch_table_with_a_text_cell_names_line_and_column(runner, scenes, tmp_path):
+    bad = tmp_path / "patches.csv"
+    lines = scenes["patches"].read_text().splitlines()
+    head = lines[0].split(",")
+    row = lines[2].split(",")
+    row[head.index("L")] = "abc"
+    bad.write_text("\n".join([lines[0], lines[1], ",".join(row), *lines[3:]]) + "\n")
+    r = invoke(runner, ["calibrate", "colour", scenes["chart"], "--patches", bad, "--profile", tmp_path / "p.json"])
+    _one_line_error(r, "line 3, column L is not a number", str(bad))
+
+
+def test_indicator_table_that_is_not_text(runner, tmp_path):
+    t = tmp_path / "chart.csv"
+    t.write_bytes(b"\xff\xfe\x00\x81\x92 binary")
+    r = invoke(runner, ["calibrate", "indicator", "--table", t, "--profile", tmp_path / "p.json"])
+    _one_line_error(r, "not a text CSV")
+    t.write_text("ph,R,G,B\n4,235,90,30\nseven,110,180,60\n10,55,60,165\n")
+    r = invoke(runner, ["calibrate", "indicator", "--table", t, "--profile", tmp_path / "p.json"])
+    _one_line_error(r, "line 3, column ph is not a number")
+
+
+def test_phmap_redoes_a_damaged_summary_with_a_warning(runner, scenes, tmp_path):
+    prof = tmp_path / "p.json"
+    assert invoke(runner, ["calibrate", "indicator", scenes["buffers"], "--ph", BUFFERS, "--profile", prof]).exit_code == 0
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "phmap.csv").write_text("")  # e.g. truncated by a full disk
+    r = invoke(runner, ["phmap", scenes["drops"], "--profile", prof, "--out", out])
+    assert r.exit_code == 0, r.output
+    assert "warning:" in r.output and "cannot be read back" in r.output
+    assert "ph_median" in (out / "phmap.csv").read_text()

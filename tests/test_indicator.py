@@ -86,8 +86,8 @@ def test_bad_buffer_sets_are_refused(ph, lab, match):
 # -- handbook transition ranges --------------------------------------------------
 
 def test_shipped_single_indicator_table_matches_handbook_ranges():
-    # Transition ranges (secondary: encyclopedia / CRC Handbook of Chemistry and Physics tables,
-    # as gathered in shared/reference/standards.md): bromothymol blue yellow 6.0 - 7.6 blue;
+    # Transition ranges (secondary: encyclopedia tables of handbook values, as gathered in the
+    # project's shared reference; a primary handbook was not read): bromothymol blue yellow 6.0 - 7.6 blue;
     # phenolphthalein colourless 8.2 - 10.0 pink; methyl red red 4.4 - 6.2 yellow.
     t = pd.read_csv(calibration_dir() / "indicators" / "single_indicators.csv", comment="#").set_index("name")
     assert tuple(t.loc["bromothymol blue", ["ph_low", "ph_high"]]) == (6.0, 7.6)
@@ -100,7 +100,8 @@ def test_shipped_single_indicator_table_matches_handbook_ranges():
 
 
 def test_bromothymol_blue_cannot_resolve_ph_below_its_transition_range():
-    # Handbook: bromothymol blue is yellow below pH 6.0, so buffers at pH 3, 4 and 5 look alike
+    # Transition range (secondary: encyclopedia tables of handbook values): bromothymol blue is
+    # yellow below pH 6.0, so buffers at pH 3, 4 and 5 look alike
     # and a calibration over them must be refused rather than invent a slope.
     btb = StepIndicator.single("bromothymol blue")
     lab = cs.srgb_to_lab(btb.srgb_over([3.0, 4.0, 5.0], (0.9, 0.9, 0.9)))
@@ -109,7 +110,8 @@ def test_bromothymol_blue_cannot_resolve_ph_below_its_transition_range():
 
 
 def test_bromothymol_blue_resolves_ph_inside_its_transition_range():
-    # Handbook range 6.0 - 7.6: buffers inside it calibrate, and intermediate pH read back.
+    # Transition range 6.0 - 7.6 (secondary: encyclopedia tables of handbook values): buffers
+    # inside it calibrate, and intermediate pH read back.
     btb = StepIndicator.single("bromothymol blue")
     white = (0.9, 0.9, 0.9)
     ph_cal = [6.0, 6.4, 6.8, 7.2, 7.6]
@@ -117,7 +119,8 @@ def test_bromothymol_blue_resolves_ph_inside_its_transition_range():
     probe = np.array([6.2, 6.6, 7.0, 7.4])
     got, _ = model.map_lab(cs.srgb_to_lab(btb.srgb_over(probe, white)))
     np.testing.assert_allclose(got, probe, atol=0.1)
-    # acid end yellow (hue angle 60-110 deg), base end blue (hue angle 220-300 deg)
+    # acid form yellow, base form blue (same secondary source); as CIELAB hue angles, our own
+    # reading of the colour names: yellow 60-110 deg, blue 220-300 deg
     hue = np.degrees(np.arctan2(model.lab[:, 2], model.lab[:, 1])) % 360
     assert 60 < hue[0] < 110 and 220 < hue[-1] < 300
 

@@ -58,11 +58,12 @@ def test_end_to_end_outputs(runner, tray_file, tmp_path):
     res2 = invoke(runner, ["panels", path, "--out", tmp_path / "out", "--layout", layout])
     assert "already rated" in res2.output and res2.exit_code == 0
     res3 = invoke(runner, ["panels", path, "--out", tmp_path / "out", "--layout", layout, "--force", "--hours", "96"])
-    assert "already rated" not in res3.output
+    assert "already rated" not in res3.output and res3.exit_code == 0, res3.output
     # the manifest beats --hours
     man = tmp_path / "m.csv"
     man.write_text(f"image,exposure_h\n{path.name},504\n")
-    invoke(runner, ["panels", path, "--out", tmp_path / "out", "--manifest", man, "--hours", "96", "--no-qr"])
+    res4 = invoke(runner, ["panels", path, "--out", tmp_path / "out", "--manifest", man, "--hours", "96", "--no-qr"])
+    assert res4.exit_code == 0, res4.output
     t2 = pd.read_csv(tmp_path / "out" / "panels.csv")
     assert (t2["exposure_h"] == 504).all()
     assert t2["panel_id"].tolist() == ["R1C1", "R1C2"]
@@ -112,3 +113,15 @@ def test_bad_mask_option(runner, tmp_path):
     res = invoke(runner, ["panels", tmp_path / "x.jpg", "--out", tmp_path / "o", "--mask", "1,2"])
     assert res.exit_code == 2
     assert "give 4 numbers (x,y,w,h) for a rectangle or 3 (x,y,d) for a hole" in res.output
+
+
+def test_layout_and_manifest_that_cannot_be_read(runner, tray_file, tmp_path):
+    path, _ = tray_file
+    layout = tmp_path / "layout.csv"
+    layout.write_bytes(b"\xff\xfe\x00r\x00o\x00w\x81")
+    res = invoke(runner, ["panels", path, "--out", tmp_path / "out", "--layout", layout])
+    assert res.exit_code == 2 and "UTF-8" in res.output and "Traceback" not in res.output
+    man = tmp_path / "m.csv"
+    man.write_text(f"image,exposure_h\n{path.name},two hundred\n")
+    res = invoke(runner, ["panels", path, "--out", tmp_path / "out", "--manifest", man])
+    assert res.exit_code == 2 and "line 2, column exposure_h is not a number" in res.output

@@ -195,16 +195,13 @@ def fit_colour_matrix(
 def table_lab(table: pd.DataFrame, what: str, path) -> np.ndarray:
     """CIELAB (D65) of a table's colour columns: ``L, a, b``, or ``R, G, B`` as 8-bit sRGB."""
     from coupon.errors import CouponError
+    from coupon.io.tables import numeric_columns
 
     if {"L", "a", "b"} <= set(table.columns):
-        lab = table[["L", "a", "b"]].to_numpy(dtype=float)
-    elif {"R", "G", "B"} <= set(table.columns):
-        lab = cs.srgb_to_lab(table[["R", "G", "B"]].to_numpy(dtype=float) / 255.0)
-    else:
-        raise CouponError(f"{what} needs colour columns L,a,b (CIELAB D65) or R,G,B (sRGB 0-255)", path)
-    if not np.all(np.isfinite(lab)):
-        raise CouponError(f"{what} has empty or non-numeric colours", path)
-    return lab
+        return numeric_columns(table, ["L", "a", "b"], what, path).to_numpy()
+    if {"R", "G", "B"} <= set(table.columns):
+        return cs.srgb_to_lab(numeric_columns(table, ["R", "G", "B"], what, path).to_numpy() / 255.0)
+    raise CouponError(f"{what} needs colour columns L,a,b (CIELAB D65) or R,G,B (sRGB 0-255)", path)
 
 
 def read_patch_table(path) -> pd.DataFrame:
@@ -213,18 +210,17 @@ def read_patch_table(path) -> pd.DataFrame:
     Returns the table with reference CIELAB in columns ``L, a, b``.
     """
     from coupon.errors import CouponError
+    from coupon.io.tables import numeric_columns, read_user_csv
 
-    try:
-        table = pd.read_csv(path)
-    except Exception as exc:  # pandas raises many types for a bad CSV
-        raise CouponError(f"cannot read patch table ({exc})", path) from None
-    table.columns = [c.strip() for c in table.columns]
+    table = read_user_csv(path, "patch table")
     box = ["x_px", "y_px", "w_px", "h_px"]
     missing = [c for c in box if c not in table.columns]
     if missing:
         raise CouponError(f"patch table lacks columns {missing}; expected name,x_px,y_px,w_px,h_px and L,a,b or R,G,B", path)
     lab = table_lab(table, "patch table", path)
+    boxes = numeric_columns(table, box, "patch table", path)
     out = table.copy()
+    out[box] = boxes.round().astype(int)
     if "name" not in out.columns:
         out["name"] = [f"patch{i + 1}" for i in range(len(out))]
     out[["L", "a", "b"]] = lab

@@ -437,6 +437,8 @@ def read_indicator_table(path) -> tuple[np.ndarray, np.ndarray, dict]:
     try:
         with open(path, encoding="utf-8") as fh:
             lines = fh.read().splitlines()
+    except UnicodeDecodeError:
+        raise CouponError("indicator table is not a text CSV file (save it as UTF-8 CSV)", path) from None
     except OSError as exc:
         raise CouponError(f"cannot read indicator table ({exc.strerror or exc})", path) from None
     comments = [ln.lstrip("# ").rstrip() for ln in lines if ln.startswith("#")]
@@ -451,5 +453,7 @@ def read_indicator_table(path) -> tuple[np.ndarray, np.ndarray, dict]:
     if "ph" not in table.columns:
         raise CouponError("indicator table needs a 'ph' column and L,a,b or R,G,B columns", path)
     from coupon.calibrate.colour import table_lab
+    from coupon.io.tables import numeric_columns
 
-    return table["ph"].to_numpy(dtype=float), table_lab(table, "indicator table", path), {"comments": comments}
+    ph = numeric_columns(table, ["ph"], "indicator table", path)["ph"].to_numpy()
+    return ph, table_lab(table, "indicator table", path), {"comments": comments}

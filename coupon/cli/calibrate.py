@@ -201,6 +201,10 @@ def indicator_cmd(image, ph_text, table, name, max_distance, profile_path, max_m
     \b
     coupon calibrate indicator BUFFERS.jpg --ph 3,4,5,6,7,8,9,10,11 --profile P.json
     coupon calibrate indicator --table my_chart.csv --profile P.json
+
+    Caution: indicator solutions are often ethanol-based (flammable) and may contain
+    phenolphthalein; buffers at the ends of the scale are irritant or corrosive.  Gloves, eye
+    protection, and the safety data sheets.
     """
     if (image is None) == (table is None):
         raise click.UsageError("give a buffer photo IMAGE with --ph, or --table CSV")

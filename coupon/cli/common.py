@@ -112,9 +112,11 @@ def record_rows(db, command: str, image, sha256: str | None, settings: dict, pro
     """Record one image's rows in the campaign database; a failure is reported, not raised."""
     from coupon.campaign.store import record_results
 
+    import sqlite3
+
     try:
         record_results(db, command, image, sha256, settings, profile_sha256, tables, **keys)
         return True
-    except CouponError as exc:
+    except (CouponError, sqlite3.Error) as exc:
         report_failure(f"{image}: not recorded in the database ({exc})")
         return False

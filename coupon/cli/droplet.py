@@ -23,7 +23,7 @@ from coupon.errors import AnalysisError, CouponError
 from coupon.io import frametimes as ft
 from coupon.io.atomic import write_csv, write_float_tiff, write_json
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
-from coupon.io.images import DEFAULT_MAX_PIXELS, expand_image_paths, file_sha256, load_image
+from coupon.io.images import DEFAULT_MAX_PIXELS, expand_image_paths, load_image, try_sha256
 from coupon.segment.droplet import MEASURES, DropletSettings, analyse_frame, series_events
 
 #: droplet.csv columns, in order (the issue's columns are all here, with the same names).
@@ -32,8 +32,10 @@ FRAME_COLUMNS = ["frame", "file", "t_min", "time_source", "capture_time", "drop_
 RADIAL_COLUMNS = ["frame", "file", "t_min", "r_norm", "ph_median", "n_px"]
 COMMAND = "droplet"
 
-CAUTION = ("Salt solutions with indicator and the corrosion products are mild irritants: wear gloves and eye "
-           "protection, and follow your laboratory's safety rules and the governing test method.")
+CAUTION = ("Indicator solutions are often ethanol-based (flammable) and may contain phenolphthalein "
+           "(classified as a possible carcinogen); salt solutions and corrosion products irritate eyes and "
+           "skin. Wear gloves and eye protection, read the safety data sheets and follow your laboratory's "
+           "rules and the governing test method.")
 
 
 @dataclass(frozen=True)
@@ -169,8 +171,9 @@ def droplet(frames, profile_path, out_dir, px_per_mm, acidic_below, basic_above,
     radial_profile.csv, droplet_summary.json, frames/<stem>_ph.tiff and .png, droplet_montage.png,
     droplet_kymograph.png, droplet_zone_areas.png.
 
-    Salt solutions with indicator and the corrosion products are mild irritants: wear gloves and
-    eye protection and follow your laboratory's rules and the governing test method.
+    Caution: indicator solutions are often ethanol-based (flammable) and may contain
+    phenolphthalein; salt solutions and corrosion products irritate eyes and skin.  Gloves, eye
+    protection, the safety data sheets, and your laboratory's rules and the governing method.
     """
     try:
         settings = DropletSettings(acidic_below=acidic_below, basic_above=basic_above, rings=rings)
@@ -223,7 +226,7 @@ def droplet(frames, profile_path, out_dir, px_per_mm, acidic_below, basic_above,
     results: dict[Path, dict] = {}
     todo = []
     for p in paths:
-        sha = file_sha256(p) if p.is_file() else ""
+        sha = try_sha256(p)
         if not force and sha and ledger.is_done(p, sha, shash) and str(p) in old_rows:
             results[p] = {"row": old_rows[str(p)], "radial": old_radial.get(str(p), [])}
             continue
@@ -344,7 +347,9 @@ def _previous(out_dir: Path) -> tuple[dict, dict]:
         if g.exists():
             for r in pd.read_csv(g).to_dict("records"):
                 radial.setdefault(str(r["file"]), []).append(r)
-    except (pd.errors.ParserError, KeyError, OSError):  # a damaged table means: redo
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, KeyError, ValueError,
+            OSError) as exc:  # a damaged table means: redo, and say so
+        warnings.warn(f"{out_dir}: earlier droplet tables cannot be read back ({exc}); all frames are redone")
         return {}, {}
     return rows, radial
 

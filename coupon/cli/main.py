@@ -9,6 +9,7 @@ import click
 
 from coupon import __version__
 from coupon.cli.common import install_warning_printer
+from coupon.errors import CouponError
 
 #: (module, attribute) of every command; each job's command lives in its own module.
 COMMANDS = [
@@ -60,6 +61,11 @@ def main() -> None:
     except KeyboardInterrupt:
         click.echo("interrupted", err=True)
         sys.exit(130)
+    except CouponError as exc:  # raised outside a command's own handling: still one line
+        if "--debug" in sys.argv[1:]:
+            raise
+        click.echo(f"error: {exc}", err=True)
+        sys.exit(1)
     except Exception as exc:  # noqa: BLE001 - the last line of defence against tracebacks
         if "--debug" in sys.argv[1:]:
             raise

@@ -17,7 +17,8 @@ from coupon.cli.common import EXIT_FAILED, db_option, fail, parse_numbers, parse
 from coupon.errors import AnalysisError, CouponError
 from coupon.io.atomic import write_csv, write_json
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
-from coupon.io.images import DEFAULT_MAX_PIXELS, expand_image_paths, file_sha256, load_image
+from coupon.io.tables import read_previous
+from coupon.io.images import DEFAULT_MAX_PIXELS, expand_image_paths, file_sha256, load_image, try_sha256
 from coupon.report.panel_figures import write_panel_overlay
 from coupon.segment.panels import PanelSettings, rate_panel
 from coupon.segment.panels.detect import check_panel_size, find_panels, read_qr_codes, rectify_panel
@@ -49,6 +50,9 @@ def read_layout(path: Path) -> dict[tuple[int, int], dict]:
             rows = list(csv.DictReader(fh))
     except OSError as exc:
         raise click.BadParameter(f"{path}: cannot be read ({exc.strerror or exc})", param_hint="--layout")
+    except (UnicodeDecodeError, csv.Error) as exc:
+        raise click.BadParameter(f"{path}: not a readable text CSV ({exc}); save it as UTF-8 CSV",
+                                 param_hint="--layout") from None
     need = {"row", "col", "panel_id"}
     if not rows or not need <= set(rows[0]):
         raise click.BadParameter(f"{path}: expected columns row, col, panel_id (and optionally system, "
@@ -73,14 +77,17 @@ def read_layout(path: Path) -> dict[tuple[int, int], dict]:
 
 def read_manifest(path: Path) -> dict[str, float]:
     """Manifest CSV (image, exposure_h) -> {file name: hours}."""
+    from coupon.io.tables import numeric_columns, read_user_csv
+
     try:
-        table = pd.read_csv(path)
-    except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
-        raise click.BadParameter(f"{path}: cannot be read as CSV ({exc})", param_hint="--manifest") from None
-    if not {"image", "exposure_h"} <= set(table.columns):
-        raise click.BadParameter(f"{path}: expected columns image, exposure_h, got {list(table.columns)}",
-                                 param_hint="--manifest")
-    return {Path(str(i)).name: float(h) for i, h in zip(table["image"], table["exposure_h"])}
+        table = read_user_csv(path, "manifest")
+        if not {"image", "exposure_h"} <= set(table.columns):
+            raise click.BadParameter(f"{path}: expected columns image, exposure_h, got {list(table.columns)}",
+                                     param_hint="--manifest")
+        hours = numeric_columns(table, ["exposure_h"], "manifest", path)["exposure_h"]
+    except CouponError as exc:
+        raise click.BadParameter(str(exc), param_hint="--manifest") from None
+    return {Path(str(i)).name: float(h) for i, h in zip(table["image"], hours)}
 
 
 def parse_mask(text: str) -> tuple:
@@ -288,7 +295,7 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
                             "manifest": manifest, "command": "panels", "version": 1})
     ledger = ResumeLedger(out_dir, "panels")
     table_path = out_dir / "panels.csv"
-    old = pd.read_csv(table_path, dtype={"panel_id": str}) if table_path.exists() else pd.DataFrame(columns=PANEL_COLUMNS)
+    old = read_previous(table_path, PANEL_COLUMNS, dtype={"panel_id": str})
     by_image: dict[str, list[dict]] = {}
     for rec in old.to_dict("records"):
         by_image.setdefault(str(rec["image"]), []).append(rec)
@@ -301,7 +308,7 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
     failed = 0
     todo = []
     for p in paths:
-        sha = file_sha256(p) if p.is_file() else ""
+        sha = try_sha256(p)
         if not force and sha and ledger.is_done(p, sha, digest) and str(p) in by_image:
             click.echo(f"{p}: already rated (use --force to redo)")
             if not is_recorded(db, "panels", p, sha):  # a database added after the first run gets every image

@@ -16,7 +16,8 @@ from coupon.cli.common import EXIT_FAILED, fail, report_failure
 from coupon.errors import CouponError
 from coupon.io.atomic import write_csv, write_float_tiff
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
-from coupon.io.images import DEFAULT_MAX_PIXELS, expand_image_paths, file_sha256, load_image
+from coupon.io.tables import read_previous
+from coupon.io.images import DEFAULT_MAX_PIXELS, expand_image_paths, load_image, try_sha256
 from coupon.report.figures import ph_figure
 
 SUMMARY_COLUMNS = ["image", "ph_median", "ph_p05", "ph_p95", "indicator_coverage_pct", "ph_tiff", "ph_png", "status"]
@@ -61,6 +62,7 @@ def phmap(images, profile_path, out_dir, workers, force, max_megapixels):
     DIR/<stem>_ph.png (picture with colour bar) and DIR/phmap.csv; prints the median pH.
 
     Without an indicator in the profile, the generic shipped table is used (approximate, with a warning).
+    pH read from photos is an estimate; where a calibrated pH electrode can be used, it rules.
     """
     try:
         profile = load_profile(profile_path)
@@ -76,11 +78,11 @@ def phmap(images, profile_path, out_dir, workers, force, max_megapixels):
     settings = settings_hash({"profile": profile.sha256, "command": "phmap", "version": 1})
     ledger = ResumeLedger(out_dir, "phmap")
     summary_path = out_dir / "phmap.csv"
-    old = pd.read_csv(summary_path) if summary_path.exists() else pd.DataFrame(columns=SUMMARY_COLUMNS)
+    old = read_previous(summary_path, SUMMARY_COLUMNS)
     rows = {str(r["image"]): r for r in old.to_dict("records")}
     todo = []
     for p in paths:
-        sha = file_sha256(p) if p.is_file() else ""
+        sha = try_sha256(p)
         if not force and sha and ledger.is_done(p, sha, settings) and str(p) in rows:
             click.echo(f"{p}: already mapped (use --force to redo)")
             continue

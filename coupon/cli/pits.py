@@ -16,8 +16,9 @@ from coupon.cli.common import EXIT_FAILED, db_option, fail, record_rows, report_
 from coupon.errors import AnalysisError, CouponError
 from coupon.io.atomic import write_csv, write_json
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
+from coupon.io.tables import read_previous
 from coupon.io.heightmap import HEIGHT_UNITS, load_height_map
-from coupon.io.images import DEFAULT_MAX_PIXELS, expand_image_paths, file_sha256, load_image
+from coupon.io.images import DEFAULT_MAX_PIXELS, expand_image_paths, file_sha256, load_image, try_sha256
 from coupon.ratings import mass_loss as ml
 from coupon.ratings.pitting import MassLoss, summarise_pits
 from coupon.report.pit_figures import size_histogram, size_histogram_figure, write_overlay
@@ -165,7 +166,7 @@ def _fmt(x: float, spec: str) -> str:
               help="Exposure time.")
 @click.option("--density-g-cm3", type=float, default=ml.CARBON_STEEL_DENSITY_G_CM3, show_default=True,
               callback=_positive("density (--density-g-cm3)", "g/cm3"),
-              help="Metal density; the default is carbon steel (ASTM G1 appendix table).")
+              help="Metal density; the default is carbon steel (ASTM G1 appendix table, value from memory).")
 @click.option("--workers", default=1, show_default=True, type=click.IntRange(min=1), help="Processes.")
 @click.option("--force", is_flag=True, help="Redo images already analysed into --out.")
 @db_option
@@ -187,6 +188,11 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
     and per image DIR/<stem>_pits.png (pits outlined and numbered), DIR/<stem>_pit_sizes.png
     and DIR/<stem>_pits.json (settings, profile SHA-256, version).  Images already done
     with the same settings are skipped unless --force.
+
+    Caution: cleaning coupons (ASTM G1) uses corrosive acids such as inhibited hydrochloric
+    acid: fume hood, face shield, acid-resistant gloves, add acid to water, follow the standard
+    and the safety data sheets.  Ratings and rates support, and do not replace, a qualified
+    corrosion engineer; structural decisions need measured pit depths and licensed judgement.
     """
     if (profile_path is None) == (px_per_mm is None):
         raise click.UsageError("give the scale with exactly one of --profile or --px-per-mm")
@@ -227,10 +233,9 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
     job = PitJob(settings, out_dir, int(max_megapixels * 1e6), profile_sha, height_map, height_unit, mass, base)
     ledger = ResumeLedger(out_dir, "pits")
     summary_path, pits_path = out_dir / "pit_summary.csv", out_dir / "pits.csv"
-    old = pd.read_csv(summary_path, keep_default_na=False) if summary_path.exists() else \
-        pd.DataFrame(columns=SUMMARY_COLUMNS)
+    old = read_previous(summary_path, SUMMARY_COLUMNS, keep_default_na=False)
     rows = {str(r["image"]): r for r in old.to_dict("records")}
-    old_pits = pd.read_csv(pits_path) if pits_path.exists() else pd.DataFrame(columns=PITS_COLUMNS)
+    old_pits = read_previous(pits_path, PITS_COLUMNS)
     from coupon.campaign.store import is_recorded, resolve_db_path
 
     db = resolve_db_path(out_dir, db_path)
@@ -243,7 +248,7 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
                "version": COMMAND_VERSION,
                "height_sha": file_sha256(hp) if hp is not None and hp.is_file() else None}
         item_settings[str(p)] = settings_hash(key)
-        sha = file_sha256(p) if p.is_file() else ""
+        sha = try_sha256(p)
         if not force and sha and ledger.is_done(p, sha, item_settings[str(p)]) and str(p) in rows:
             click.echo(f"{p}: already analysed (use --force to redo)")
             if not is_recorded(db, "pits", p, sha):  # a database added after the first run gets every image

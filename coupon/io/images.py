@@ -281,12 +281,35 @@ def load_image(path: str | os.PathLike, max_pixels: int = DEFAULT_MAX_PIXELS) ->
 
 
 def file_sha256(path: str | os.PathLike) -> str:
-    """SHA-256 of a file's bytes, read in blocks."""
+    """SHA-256 of a file's bytes, read in blocks.
+
+    Raises
+    ------
+    CouponError
+        The file is missing or cannot be read.
+    """
+    from coupon.errors import CouponError
+
     h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
+    try:
+        with open(path, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 20), b""):
+                h.update(block)
+    except FileNotFoundError:
+        raise CouponError("file not found; check the path", path) from None
+    except OSError as exc:
+        raise CouponError(f"cannot be read ({exc.strerror or exc})", path) from None
     return h.hexdigest()
+
+
+def try_sha256(path: str | os.PathLike) -> str:
+    """SHA-256 of a file, or "" when it is missing or unreadable (the batch then reports it)."""
+    from coupon.errors import CouponError
+
+    try:
+        return file_sha256(path) if Path(path).is_file() else ""
+    except CouponError:
+        return ""
 
 
 def expand_image_paths(items: list[str | os.PathLike]) -> list[Path]:
