@@ -161,3 +161,29 @@ def test_missing_image_and_analysed_area_warning(runner, scene, tmp_path):
 def test_help_has_an_example(runner):
     r = invoke(runner, ["pits", "--help"])
     assert r.exit_code == 0 and "Example" in r.output and "--height-unit" in r.output
+
+
+@pytest.mark.slow
+def test_rectify_uses_the_profile_homography(runner, tmp_path):
+    # an oblique photo of a coupon lying where a checkerboard calibration was made (synthetic truth)
+    from coupon.calibrate.profile import Profile, save_profile
+    from coupon.calibrate.scale import ScaleCalibration
+    from coupon.synth.pits import tilted_coupon_scene
+
+    rgb, hom, truth = tilted_coupon_scene(seed=3, tilt_deg=30, coupon_mm=(50, 35), n_pits=50,
+                                          radius_mm=(0.35, 1.0), margin_mm=8)
+    img = write_rgb(tmp_path / "oblique.jpg", rgb)
+    prof = save_profile(Profile(scale=ScaleCalibration(18.0, 0.1, "checkerboard", homography=hom)),
+                        tmp_path / "p.json")
+    true_area = truth["counted"]["mean_area_mm2"]
+    r = invoke(runner, ["pits", img, "--profile", prof, "--out", tmp_path / "a", "--rectify"])
+    assert r.exit_code == 0, r.output
+    rect = pd.read_csv(tmp_path / "a" / "pit_summary.csv").iloc[0]
+    assert rect["mean_area_mm2"] == pytest.approx(true_area, rel=0.10)  # issue 5: size within 10 %
+    assert abs(rect["pit_count"] - truth["counted"]["count"]) <= 0.05 * truth["counted"]["count"]
+    # without --rectify the oblique view is measured with the mean scale only: visibly off
+    r = invoke(runner, ["pits", img, "--profile", prof, "--out", tmp_path / "b"])
+    plain = pd.read_csv(tmp_path / "b" / "pit_summary.csv").iloc[0]
+    assert abs(plain["analysed_area_mm2"] / rect["analysed_area_mm2"] - 1) > 0.03
+    r = invoke(runner, ["pits", img, "--px-per-mm", 18, "--out", tmp_path / "c", "--rectify"])
+    assert r.exit_code == 2 and "--rectify uses the homography" in r.output

@@ -33,7 +33,7 @@ SUMMARY_COLUMNS = [
     "g46_size", "g46_depth", "max_depth_mm", "corrosion_rate_mm_y", "corrosion_rate_mpy", "average_penetration_mm",
     "pitting_factor", "overlay", "status",
 ]
-COMMAND_VERSION = 1
+COMMAND_VERSION = 2  # 2: touching pits split more often, 12.4 mm background window at 40 px/mm
 CAUTION = ("Ratings and rates support, and do not replace, a qualified corrosion engineer and the governing "
            "standard (ASTM G1, G46) or specification; structural decisions need measured pit depths and "
            "licensed judgement.")
@@ -51,6 +51,8 @@ class PitJob:
     height_unit: str | None = None
     mass: MassLoss | None = None
     base_settings: dict = field(default_factory=dict)
+    #: the profile's homography (px -> mm) as nested tuples, so the job pickles to workers
+    homography: tuple | None = None
 
     def height_path(self, image: Path) -> Path | None:
         if self.height_map is None:
@@ -77,7 +79,8 @@ def pit_rows_for_image(path: Path, job: PitJob) -> dict:
     if hpath is not None:
         height = load_height_map(hpath, job.height_unit, shape_rc=img.shape_rc)
     try:
-        res = analyse_pits(img.rgb, job.settings, height)
+        hom = None if job.homography is None else np.asarray(job.homography, dtype=np.float64)
+        res = analyse_pits(img.rgb, job.settings, height, homography_px_to_mm=hom, height_unit=job.height_unit)
     except AnalysisError as exc:
         if exc.path is not None:
             raise
@@ -88,7 +91,8 @@ def pit_rows_for_image(path: Path, job: PitJob) -> dict:
             f"the height map shows no depth at the pits (deepest {summary['max_depth_mm'] * 1000:.3g} um); "
             "check --height-unit and that the map is registered to the image", hpath)
     stem = path.stem
-    overlay = write_overlay(job.out_dir / f"{stem}_pits.png", img.rgb, res.labels, res.analysed, res.pits,
+    shown = res.rectified_rgb if res.rectified_rgb is not None else img.rgb
+    overlay = write_overlay(job.out_dir / f"{stem}_pits.png", shown, res.labels, res.analysed, res.pits,
                             job.settings.px_per_mm)
     hist = size_histogram_figure(res.pits, job.out_dir / f"{stem}_pit_sizes.png", title=f"{path.name}: pit sizes")
     record = {
@@ -154,6 +158,10 @@ def _fmt(x: float, spec: str) -> str:
               help="Pits appear as dark openings, or outlined by a bright lip (low-angle or ring light).")
 @click.option("--min-contrast", default=0.12, show_default=True, type=click.FloatRange(0, 1, min_open=True,
               max_open=True), help="Smallest relative darkness (or rim brightness) of a pit against the surface.")
+@click.option("--rectify", is_flag=True,
+              help="Resample the image to a mm grid with the profile's homography first: for a camera on a fixed "
+                   "stand photographing the coupon where the calibration target lay, at an angle. Without it the "
+                   "profile's mean px/mm is used and the image must be square-on (a scan).")
 @click.option("--whole-frame", is_flag=True, help="Analyse the whole frame (a close-up inside the coupon).")
 @click.option("--height-map", help="Height map registered pixel for pixel (float TIFF or CSV); for several "
               "images a pattern with {stem}, e.g. 'scans/{stem}_height.tiff'.")
@@ -174,7 +182,7 @@ def _fmt(x: float, spec: str) -> str:
               show_default=True, help="Refuse larger images.")
 def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_look, min_contrast, whole_frame,
          height_map, height_unit, mass_loss_mg, exposed_area_cm2, hours, density_g_cm3, workers, force,
-         db_path, max_megapixels):
+         db_path, max_megapixels, rectify):
     """Pits on cleaned coupons: count, density, size, depth, spread, ASTM G46 ratings and,
     with the mass loss, the ASTM G1 corrosion rate and the pitting factor.
 
@@ -196,6 +204,8 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
     """
     if (profile_path is None) == (px_per_mm is None):
         raise click.UsageError("give the scale with exactly one of --profile or --px-per-mm")
+    if rectify and profile_path is None:
+        raise click.UsageError("--rectify uses the homography of a --profile")
     if height_map is not None and height_unit is None:
         raise click.UsageError("give --height-unit um or mm with --height-map (the unit is never guessed)")
     if height_unit is not None and height_map is None:
@@ -214,6 +224,7 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
         raise click.UsageError("one --height-map for several images: use a pattern with {stem}, "
                                "e.g. 'scans/{stem}_height.tiff'")
     profile_sha = None
+    homography = None
     try:
         if profile_path is not None:
             profile = load_profile(profile_path)
@@ -222,15 +233,21 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
                                   profile_path)
             px_per_mm = profile.scale.px_per_mm
             profile_sha = profile.sha256
+            if rectify and profile.scale.homography is None:
+                raise CouponError("--rectify needs a profile whose scale has a homography (from "
+                                  "'coupon calibrate scale --checker' or '--rect')", profile_path)
+            if rectify:
+                homography = tuple(map(tuple, np.asarray(profile.scale.homography, dtype=float).tolist()))
         settings = PitSettings(px_per_mm=px_per_mm, edge_mm=edge_mm, min_pit_mm2=min_pit_mm2, look=pit_look,
                                whole_frame=whole_frame, min_contrast=min_contrast)
         mass = None if mass_loss_mg is None else MassLoss(mass_loss_mg, hours, density_g_cm3, exposed_area_cm2)
     except CouponError as exc:
         raise fail(exc) from None
     out_dir.mkdir(parents=True, exist_ok=True)
-    base = {"scale_source": "profile" if profile_path else "--px-per-mm", "height_unit": height_unit,
+    base = {"scale_source": "profile" if profile_path else "--px-per-mm", "rectify": rectify, "height_unit": height_unit,
             "mass_loss": None if mass is None else mass.__dict__, "default_min_pit_mm2": default_min_pit_mm2(px_per_mm)}
-    job = PitJob(settings, out_dir, int(max_megapixels * 1e6), profile_sha, height_map, height_unit, mass, base)
+    job = PitJob(settings, out_dir, int(max_megapixels * 1e6), profile_sha, height_map, height_unit, mass, base,
+                 homography)
     ledger = ResumeLedger(out_dir, "pits")
     summary_path, pits_path = out_dir / "pit_summary.csv", out_dir / "pits.csv"
     old = read_previous(summary_path, SUMMARY_COLUMNS, keep_default_na=False)

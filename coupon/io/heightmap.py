@@ -11,7 +11,10 @@ Accepted files:
 Values are surface heights in micrometres (``unit="um"``) or millimetres
 (``unit="mm"``); :func:`load_height_map` returns millimetres, float32, NaN where
 missing.  A plausibility check catches the commonest mistake, a wrong unit: the
-spread of heights over the scan must look like a coupon surface.
+spread of heights over the scan must look like a coupon surface.  A scan that
+includes the table around the coupon can pass this check in the wrong unit (the
+table's step dominates the spread); the pit analysis therefore checks the
+coupon's own surface too (:func:`coupon.segment.pits.check_height_relief`).
 """
 
 from __future__ import annotations
@@ -42,30 +45,41 @@ def _read_tiff(path: Path) -> np.ndarray:
                              "export heights as a single-channel float TIFF", path)
     if not (np.issubdtype(arr.dtype, np.floating) or np.issubdtype(arr.dtype, np.integer)):
         raise ImageLoadError(f"height map pixels must be numbers, got {arr.dtype}", path)
-    return arr.astype(np.float32)
+    return arr.astype(np.float32, copy=False)  # a float32 TIFF is used as read, without a copy
 
 
 def _read_text(path: Path) -> np.ndarray:
+    """A CSV (or whitespace-separated) grid of heights, no header; empty or 'nan' cells are missing."""
+    import io
+
+    import pandas as pd
+
     try:
         text = path.read_text(encoding="utf-8-sig")
     except UnicodeDecodeError:
         raise ImageLoadError("height map CSV is not a text file", path) from None
-    for sep in (",", ";", "\t", None):
-        if sep is not None and sep not in text.split("\n", 1)[0]:
-            continue
-        rows = [ln for ln in text.splitlines() if ln.strip()]
-        try:
-            data = [[float(v) if v.strip() and v.strip().lower() != "nan" else np.nan
-                     for v in (ln.split(sep) if sep else ln.split())] for ln in rows]
-        except ValueError as exc:
-            raise ImageLoadError(f"height map CSV holds a value that is not a number ({exc}); "
-                                 "expected a grid of heights with no header", path) from None
-        widths = {len(r) for r in data}
-        if len(widths) != 1:
-            raise ImageLoadError(f"height map CSV rows have different lengths {sorted(widths)[:5]}; "
-                                 "expected one image row per line", path)
-        return np.asarray(data, dtype=np.float32)
-    raise ImageLoadError("height map CSV is empty", path)
+    first = text.split("\n", 1)[0]
+    sep = next((c for c in (",", ";", "\t") if c in first), r"\s+")
+    if not text.strip():
+        raise ImageLoadError("height map CSV is empty", path)
+    lines = [ln for ln in text.splitlines() if ln.strip()]
+    widths = {len(ln.split()) if sep == r"\s+" else ln.count(sep) + 1 for ln in lines}  # per line, not per value
+    if len(widths) != 1:
+        raise ImageLoadError(f"height map CSV rows have different lengths {sorted(widths)[:5]}; "
+                             "expected one image row per line", path)
+    try:
+        table = pd.read_csv(io.StringIO(text), sep=sep, header=None, skip_blank_lines=True,
+                            na_values=["nan", "NaN", "NAN"], engine="c" if len(sep) == 1 else "python")
+    except pd.errors.ParserError as exc:
+        raise ImageLoadError(f"height map CSV rows have different lengths ({exc}); expected one image row "
+                             "per line", path) from None
+    values = table.apply(pd.to_numeric, errors="coerce")
+    bad = values.isna() & table.notna()
+    if bad.to_numpy().any():
+        r, c = np.argwhere(bad.to_numpy())[0]
+        raise ImageLoadError(f"height map CSV holds a value that is not a number ({table.iat[r, c]!r} on line "
+                             f"{r + 1}); expected a grid of heights with no header", path)
+    return values.to_numpy(dtype=np.float32)
 
 
 def load_height_map(path: str | os.PathLike, unit: str, shape_rc: tuple[int, int] | None = None) -> np.ndarray:
@@ -107,12 +121,20 @@ def load_height_map(path: str | os.PathLike, unit: str, shape_rc: tuple[int, int
         raise ImageLoadError(
             f"height map is {arr.shape[1]}x{arr.shape[0]} values but the image is {shape_rc[1]}x{shape_rc[0]} px "
             "(width x height); it must be registered pixel for pixel to the image", path)
-    arr[~np.isfinite(arr)] = np.nan
-    finite = np.isfinite(arr)
-    if finite.mean() < 0.5:
-        raise ImageLoadError(f"height map has valid values on only {100 * finite.mean():.0f} % of its pixels "
+    if not arr.flags.writeable:
+        arr = arr.copy()
+    bad = ~np.isfinite(arr)
+    n_bad = int(np.count_nonzero(bad))
+    if n_bad:
+        arr[bad] = np.nan  # infinities are missing data too
+    del bad
+    valid = 1.0 - n_bad / max(arr.size, 1)
+    if valid < 0.5:
+        raise ImageLoadError(f"height map has valid values on only {100 * valid:.0f} % of its pixels "
                              "(at least 50 % expected)", path)
-    mm = arr * np.float32(HEIGHT_UNITS[unit])
+    mm = arr
+    if HEIGHT_UNITS[unit] != 1.0:
+        mm *= np.float32(HEIGHT_UNITS[unit])  # in place: a 24-megapixel map is 96 MB
     step = max(1, int(np.sqrt(mm.size / 1e6)))
     sub = mm[::step, ::step]
     lo, hi = np.nanpercentile(sub, [1, 99])

@@ -39,8 +39,9 @@ from skimage.filters import threshold_otsu
 from skimage.morphology import h_maxima
 from skimage.segmentation import watershed
 
-from coupon.calibrate.scale import check_px_per_mm
+from coupon.calibrate.scale import check_px_per_mm, warp_to_mm_grid
 from coupon.errors import AnalysisError
+from coupon.io.heightmap import PLAUSIBLE_SPREAD_MM
 
 #: How pits look: dark openings, or openings outlined by a bright lip (low-angle or ring light).
 PIT_LOOKS = ("dark", "bright-rim")
@@ -139,6 +140,10 @@ class PitAnalysis:
         Area and border length of the analysed region.
     details : dict
         Thresholds, noise, counts of dropped objects, reference surface fit, notes.
+    rectified_rgb : (M', N', 3) ndarray of float32 or None
+        The picture rectified to a mm grid when a homography was applied (labels,
+        masks and positions refer to it: draw the overlay on it); None when the
+        input picture was used as it is.
     """
 
     pits: pd.DataFrame
@@ -148,6 +153,95 @@ class PitAnalysis:
     analysed_area_mm2: float
     perimeter_mm: float
     details: dict
+    rectified_rgb: np.ndarray | None = field(default=None, repr=False)
+
+
+# -- 0. perspective ---------------------------------------------------------------
+
+#: Below this anisotropy and spread of the local scale the view is square-on: no resampling.
+SQUARE_ON_TOLERANCE = 0.01
+#: Above this anisotropy of the local scale (1 / cos 35 degrees) an oblique view is refused:
+#: the near wall of a pit hides part of its floor and the far wall shows, so the dark opening
+#: no longer outlines the pit, whatever the rectification.
+MAX_ANISOTROPY = 1.0 / np.cos(np.deg2rad(35.0))
+#: Refuse a rectified grid this many times larger than the picture (a homography from another set-up).
+MAX_GRID_GROWTH = 4.0
+
+
+def view_geometry(homography_px_to_mm: np.ndarray, shape_rc: tuple[int, int]) -> dict:
+    """Local scale of a px -> mm homography over the picture (7 x 7 points).
+
+    Returns the anisotropy (ratio of the Jacobian's singular values; about 1 /
+    cos(tilt) for a tilted plane): at the picture's centre (``anisotropy``, from
+    which ``tilt_deg``) and its largest value (perspective makes it vary),
+    and the range of the areal scale in px/mm.
+    """
+    hom = np.asarray(homography_px_to_mm, np.float64).reshape(3, 3)
+    h, w = shape_rc
+    xs, ys = np.meshgrid(np.linspace(0, w, 7), np.linspace(0, h, 7))
+    p = np.column_stack([xs.ravel(), ys.ravel()])
+    d = 1.0
+
+    def f(q):
+        return cv2.perspectiveTransform(q.reshape(-1, 1, 2), hom).reshape(-1, 2)
+
+    jx, jy = (f(p + [d, 0]) - f(p - [d, 0])) / (2 * d), (f(p + [0, d]) - f(p - [0, d])) / (2 * d)
+    jac = np.stack([jx, jy], axis=2)  # mm per px
+    sv = np.linalg.svd(jac, compute_uv=False)
+    if not np.all(np.isfinite(sv)) or sv.min() <= 0:
+        raise AnalysisError("the profile's homography is degenerate over this picture (the picture "
+                            "reaches the horizon of the calibrated plane); recalibrate the scale")
+    ratio = sv[:, 0] / sv[:, 1]
+    aniso = float(ratio[ratio.size // 2])  # the picture's centre: the tilt itself for a centred camera
+    areal = 1.0 / np.sqrt(sv[:, 0] * sv[:, 1])  # px per mm
+    return {"anisotropy": aniso, "anisotropy_max": float(ratio.max()),
+            "tilt_deg": float(np.degrees(np.arccos(min(1.0, 1.0 / aniso)))),
+            "px_per_mm_min": float(areal.min()), "px_per_mm_max": float(areal.max())}
+
+
+def rectify_view(rgb: np.ndarray, homography_px_to_mm: np.ndarray, px_per_mm: float,
+                 height_mm: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray | None, dict] | None:
+    """Resample an oblique picture (and its height map) onto a mm grid at ``px_per_mm``.
+
+    Returns None when the view is square-on within :data:`SQUARE_ON_TOLERANCE`
+    (rotation and scale alone change no pit measurement); otherwise the
+    rectified picture, height map and a dict with the geometry and the grid
+    origin in plane mm (positions measured on the grid add it to get plane
+    coordinates).
+
+    Raises
+    ------
+    AnalysisError
+        The view is more oblique than :data:`MAX_ANISOTROPY` (about 35 degrees), or
+        the grid would be implausibly large.
+    """
+    geo = view_geometry(homography_px_to_mm, rgb.shape[:2])
+    if geo["anisotropy"] > MAX_ANISOTROPY:
+        raise AnalysisError(
+            f"the profile's homography says the camera looks at the coupon about {geo['tilt_deg']:.0f} degrees "
+            f"off square (more than {np.degrees(np.arccos(1 / MAX_ANISOTROPY)):.0f}); pit walls then hide pit floors "
+            "and openings cannot be measured: photograph the coupon square-on (or scan it)")
+    if (geo["anisotropy_max"] - 1 < SQUARE_ON_TOLERANCE
+            and geo["px_per_mm_max"] / geo["px_per_mm_min"] - 1 < SQUARE_ON_TOLERANCE):
+        return None
+    h, w = rgb.shape[:2]
+    corners = np.array([[0, 0], [w, 0], [w, h], [0, h]], np.float64).reshape(-1, 1, 2)
+    mm = cv2.perspectiveTransform(corners, np.asarray(homography_px_to_mm, np.float64)).reshape(-1, 2)
+    x0, y0 = mm.min(axis=0)
+    size_mm = tuple(float(v) for v in mm.max(axis=0) - mm.min(axis=0))
+    grid_px = size_mm[0] * size_mm[1] * px_per_mm**2
+    if grid_px > MAX_GRID_GROWTH * h * w:
+        raise AnalysisError(
+            f"rectifying with the profile's homography would give a {grid_px / 1e6:.0f}-megapixel grid for a "
+            f"{h * w / 1e6:.0f}-megapixel picture; the profile was calibrated for another camera set-up")
+    out = warp_to_mm_grid(np.asarray(rgb, np.float32), homography_px_to_mm, size_mm, px_per_mm, (x0, y0))
+    hm = None
+    if height_mm is not None:
+        hm = warp_to_mm_grid(np.asarray(height_mm, np.float32), homography_px_to_mm, size_mm, px_per_mm, (x0, y0))
+    geo |= {"origin_mm": [float(x0), float(y0)], "size_mm": list(size_mm), "grid_px_per_mm": float(px_per_mm),
+            "note": "picture resampled to a mm grid with the profile's homography; positions are measured "
+                    "from the grid's top-left corner (add origin_mm for the calibrated plane's coordinates)"}
+    return out, hm, geo
 
 
 # -- 1. exposure -----------------------------------------------------------------
@@ -165,7 +259,7 @@ def check_exposure(rgb: np.ndarray, grey: np.ndarray) -> None:
     AnalysisError
         Blank (one grey level), nearly black, or more than a quarter clipped at white.
     """
-    step = max(1, int(np.sqrt(grey.size / 1e6)))  # a million pixels decide this
+    step = max(1, int(np.sqrt(grey.size / 2.5e5)))  # a quarter of a million pixels decide this
     g = grey[::step, ::step]
     spread = float(np.percentile(g, 99) - np.percentile(g, 1))
     if spread < 0.02:
@@ -182,10 +276,12 @@ def check_exposure(rgb: np.ndarray, grey: np.ndarray) -> None:
 
 # -- 2. region ------------------------------------------------------------------
 
-def _reduce(img: np.ndarray, factor: float) -> np.ndarray:
-    h, w = img.shape[:2]
-    return cv2.resize(img, (max(1, int(round(w / factor))), max(1, int(round(h / factor)))),
-                      interpolation=cv2.INTER_AREA)
+def _reduce(img: np.ndarray, factor: int) -> np.ndarray:
+    """Area-average reduction by an integer factor (OpenCV's fast path: a non-integer one is 4 x slower)."""
+    k = max(1, int(factor))
+    if k == 1:
+        return img
+    return cv2.resize(img, None, fx=1.0 / k, fy=1.0 / k, interpolation=cv2.INTER_AREA)
 
 
 def _largest(mask: np.ndarray) -> np.ndarray:
@@ -253,7 +349,7 @@ def find_region(grey: np.ndarray, edge_px: float, whole_frame: bool = False) -> 
         cols = np.minimum(np.arange(w) + 0.5, w - np.arange(w) - 0.5)
         analysed = (rows[:, None] > edge_px) & (cols[None, :] > edge_px)
         return Region(np.ones((h, w), bool), analysed, "whole frame")
-    factor = max(1.0, max(h, w) / _REDUCED_SIDE_PX)
+    factor = int(np.ceil(max(1.0, max(h, w) / _REDUCED_SIDE_PX) - 1e-9))
     small = cv2.GaussianBlur(_reduce(grey, factor), (0, 0), 1.5)
     t = float(threshold_otsu(small))
     lo, hi = small[small <= t], small[small > t]
@@ -284,19 +380,23 @@ def find_region(grey: np.ndarray, edge_px: float, whole_frame: bool = False) -> 
 
 def region_perimeter_px(mask: np.ndarray) -> float:
     """Length of the region's outer outline in px (OpenCV contours)."""
-    contours, _ = cv2.findContours(mask.astype(np.uint8), cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
+    contours, _ = cv2.findContours(mask.view(np.uint8) if mask.dtype == bool else mask.astype(np.uint8),
+                                   cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
     return float(sum(cv2.arcLength(c, True) for c in contours))
 
 
 # -- 3. flattening ---------------------------------------------------------------
 
-def background_level(grey: np.ndarray, region: np.ndarray, window_px: float) -> np.ndarray:
+def background_level(grey: np.ndarray, region: np.ndarray, window_px: float, gain: float = 1.0) -> np.ndarray:
     """Large-scale surface level: a median over ``window_px``, blind to objects smaller than half of it.
 
-    Computed on a copy reduced so the window is 31 pixels; outside the region the
-    nearest inside value is copied so the background does not leak in.
+    Computed on a copy reduced by an integer factor so the window is 31 to 61
+    pixels (the odd size nearest to ``window_px`` over the factor); outside the
+    region the nearest inside value is copied so the background does not leak in.  The
+    result (times ``gain``, applied on the reduced copy) is interpolated to full
+    size and never below 1e-3 (a divisor).
     """
-    factor = max(1.0, window_px / 31.0)
+    factor = max(1, int(window_px // 31))
     g = _reduce(grey, factor)
     cover = _reduce(region.view(np.uint8), factor)  # 0/1 averaged: 1 means fully inside
     inside = cover >= 1
@@ -305,20 +405,30 @@ def background_level(grey: np.ndarray, region: np.ndarray, window_px: float) -> 
     if not inside.all() and inside.any():
         idx = ndi.distance_transform_edt(~inside, return_distances=False, return_indices=True)
         g = g[idx[0], idx[1]]
-    ksize = 31 if min(g.shape) > 31 else max(3, 2 * (min(g.shape) // 2) - 1)
+    ksize = max(3, 2 * int(round((window_px / factor - 1) / 2)) + 1)
+    if ksize >= min(g.shape):
+        ksize = max(3, 2 * (min(g.shape) // 2) - 1)
     g8 = np.clip(np.rint(g * 255.0), 0, 255).astype(np.uint8)  # OpenCV's large medians are 8-bit only
     med = cv2.medianBlur(g8, ksize).astype(np.float32) / 255.0
-    med = cv2.GaussianBlur(med, (0, 0), 2.0)
+    med = np.maximum(cv2.GaussianBlur(med, (0, 0), 2.0), 1e-3) * np.float32(gain)
     h, w = grey.shape
     return cv2.resize(med, (w, h), interpolation=cv2.INTER_LINEAR)
 
 
+def smooth_grey(grey: np.ndarray, smooth_px: float = 0.7) -> np.ndarray:
+    """Grey level with the sensor noise damped (Gaussian, 5 x 5 taps: the weights beyond are below 1e-4)."""
+    return cv2.GaussianBlur(grey, (5, 5), smooth_px) if smooth_px > 0 else grey.copy()
+
+
 def flatten(grey: np.ndarray, region: np.ndarray, window_px: float, smooth_px: float = 0.7) -> np.ndarray:
-    """Relative contrast against the surface around: grey / background - 1 (0 outside the region)."""
-    bg = background_level(grey, region, window_px)
-    g = cv2.GaussianBlur(grey, (0, 0), smooth_px) if smooth_px > 0 else grey
-    g = g.copy() if g is grey else g
-    np.divide(g, np.maximum(bg, 1e-3, out=bg), out=g)
+    """Relative contrast against the surface around: grey / background - 1 (0 outside the region).
+
+    :func:`analyse_pits` does not form this full-frame array: it compares the
+    smoothed grey level with the background times (1 - threshold) and computes
+    the contrast on the candidate pixels only (:func:`segment_pits`).
+    """
+    g = smooth_grey(grey, smooth_px)
+    np.divide(g, background_level(grey, region, window_px), out=g)
     g -= 1.0
     np.copyto(g, 0.0, where=~region)
     return g
@@ -341,30 +451,103 @@ def label_components(mask: np.ndarray) -> tuple[int, np.ndarray]:
     return n - 1, lab
 
 
-def _split_object(obj: np.ndarray, h_px: float) -> np.ndarray | None:
-    """Watershed split of one object's mask; None when it holds one pit only."""
-    dist = cv2.distanceTransform(np.pad(obj.astype(np.uint8), 1), cv2.DIST_L2, cv2.DIST_MASK_PRECISE)[1:-1, 1:-1]
-    h = max(h_px, 0.08 * float(dist.max()))  # ridges of one elongated pit vary less than this
-    peaks = h_maxima(dist, h)
+#: A basin of the distance transform is a pit of its own when its peak stands above the saddle to its
+#: neighbour by at least this fraction of the lower of the two peaks (size-relative dynamics): a small pit
+#: merged into a large one keeps its own marker, a bump on one pit's outline does not.
+SPLIT_RELATIVE_DYNAMIC = 0.12
+
+
+def _basin_saddles(basins: np.ndarray, dist: np.ndarray) -> dict[tuple[int, int], float]:
+    """Highest pass of ``dist`` between every two 4-adjacent basins (labels > 0)."""
+    keys, vals = [], []
+    for a, b, da, db in ((basins[:, :-1], basins[:, 1:], dist[:, :-1], dist[:, 1:]),
+                         (basins[:-1, :], basins[1:, :], dist[:-1, :], dist[1:, :])):
+        m = (a != b) & (a > 0) & (b > 0)
+        lo, hi = np.minimum(a[m], b[m]), np.maximum(a[m], b[m])
+        keys.append(lo.astype(np.int64) * (int(basins.max()) + 1) + hi)
+        vals.append(np.minimum(da[m], db[m]))
+    keys, vals = np.concatenate(keys), np.concatenate(vals)
+    if not keys.size:
+        return {}
+    uk, inv = np.unique(keys, return_inverse=True)
+    best = np.full(uk.size, -np.inf)
+    np.maximum.at(best, inv, vals)
+    n1 = int(basins.max()) + 1
+    return {(int(k // n1), int(k % n1)): float(v) for k, v in zip(uk, best)}
+
+
+def _split_object(obj: np.ndarray, h_px: float = 0.5, relative: float = SPLIT_RELATIVE_DYNAMIC) -> np.ndarray | None:
+    """Watershed split of one object's mask; None when it holds one pit only.
+
+    Markers are the h-maxima of the distance transform (``h_px`` removes pixel
+    noise of the outline); neighbouring basins are then merged, lowest first,
+    while the lower peak stands less than ``relative`` times its own height above
+    the saddle between them.  The criterion is relative to each pit's own size, so
+    a small pit merged into a much larger neighbour is kept apart, which a
+    threshold relative to the largest pit of the object missed.
+    """
+    dist = cv2.distanceTransform(np.pad(obj.view(np.uint8), 1), cv2.DIST_L2, cv2.DIST_MASK_PRECISE)[1:-1, 1:-1]
+    peaks = h_maxima(dist, h_px)
     markers, n = ndi.label(peaks, structure=np.ones((3, 3)))
     if n <= 1:
         return None
-    return watershed(-dist, markers, mask=obj)
+    basins = watershed(-dist, markers, mask=obj)
+    peak = np.zeros(n + 1)
+    np.maximum.at(peak, basins[obj], dist[obj])
+    saddle = _basin_saddles(basins, dist)
+    parent = np.arange(n + 1)
+
+    def root(i):
+        while parent[i] != i:
+            i = parent[i]
+        return i
+
+    while saddle:
+        # the weakest separation first: lowest peak-above-saddle relative to the lower peak
+        (i, j), sd = min(saddle.items(), key=lambda kv: (min(peak[kv[0][0]], peak[kv[0][1]]) - kv[1])
+                         / max(min(peak[kv[0][0]], peak[kv[0][1]]), 1e-6))
+        low = min(peak[i], peak[j])
+        if low - sd >= relative * low:
+            break
+        keep, gone = (i, j) if peak[i] >= peak[j] else (j, i)
+        parent[gone] = keep
+        merged: dict[tuple[int, int], float] = {}
+        for (a, b), v in saddle.items():
+            a, b = root(a), root(b)
+            if a != b:
+                key = (min(a, b), max(a, b))
+                merged[key] = max(merged.get(key, -np.inf), v)
+        saddle = merged
+    roots = np.array([root(i) for i in range(n + 1)])
+    _, dense = np.unique(roots, return_inverse=True)  # 0 stays 0 (background is its own root)
+    if dense.max() <= 1:
+        return None
+    return dense.astype(np.int32)[basins]
 
 
-def segment_pits(contrast: np.ndarray, coupon: np.ndarray, analysed: np.ndarray, settings: PitSettings,
-                 noise_sigma: float) -> tuple[np.ndarray, dict]:
-    """Label the counted pits (int32, ids not consecutive) and say what was dropped."""
+def segment_pits(smooth: np.ndarray, background: np.ndarray, coupon: np.ndarray, analysed: np.ndarray,
+                 settings: PitSettings, noise_sigma: float) -> tuple[np.ndarray, dict, tuple[np.ndarray, np.ndarray]]:
+    """Label the counted pits (int32, ids not consecutive) and say what was dropped.
+
+    The contrast is ``smooth / background - 1``.  ``background`` is overwritten
+    (scaled by the threshold) to save a full-frame array.  Returns the labels,
+    the details and the pixel list of the labelled pixels: (flat indices, label).
+    """
     s = settings.px_per_mm
     t_low = max(settings.min_contrast, 5.0 * noise_sigma)
     min_px = settings.min_area_mm2 * s * s
     # pit-likeness: darkness for dark pits, brightness of the lip for bright-rimmed ones
     dark = settings.look == "dark"
-    cand = (contrast <= -t_low) if dark else (contrast >= t_low)
+    gain = np.float32(1.0 - t_low if dark else 1.0 + t_low)
+    limit = np.multiply(background, gain, out=background)  # contrast <= -t  <=>  smooth <= (1 - t) background
+    cand = np.less_equal(smooth, limit) if dark else np.greater_equal(smooth, limit)
     cand &= coupon
     n0, lab0 = label_components(cand)
     idx = np.flatnonzero(cand)
-    vals, lv = contrast.ravel()[idx], lab0.ravel()[idx]
+    # contrast on the candidate pixels only
+    vals = smooth.ravel()[idx] * gain / limit.ravel()[idx] - np.float32(1.0)
+    lv = lab0.ravel()[idx]
+    del lab0
     if dark:
         vals = -vals
     vmax = np.zeros(n0 + 1, np.float32)
@@ -376,9 +559,10 @@ def segment_pits(contrast: np.ndarray, coupon: np.ndarray, analysed: np.ndarray,
     level = np.maximum(0.5 * vmean, t_low)
     level[vmax < 1.5 * t_low] = np.inf
     kidx = idx[vals >= level[lv]]  # flat indices of the pixels kept
-    keep = np.zeros(cand.shape, bool)
+    keep = cand  # reused: the candidates are no longer needed
+    keep[...] = False
     keep.ravel()[kidx] = True
-    del cand, lab0, idx, vals, lv
+    del idx, vals, lv
     if settings.look == "bright-rim":
         keep = fill_holes(keep) & coupon  # the pit is the lip and what it encloses
         kidx = np.flatnonzero(keep)
@@ -394,45 +578,49 @@ def segment_pits(contrast: np.ndarray, coupon: np.ndarray, analysed: np.ndarray,
     cmax = np.zeros(n1, np.int64)
     np.minimum.at(rmin, kl, kr), np.minimum.at(cmin, kl, kc)
     np.maximum.at(rmax, kl, kr), np.maximum.at(cmax, kl, kc)
+    del kr, kc
     big = area >= min_px
     big[0] = False
     too_small = int((~big[1:]).sum())
     split_made = 0
     next_id = n1
-    new_parts: list[tuple[tuple[slice, slice], np.ndarray, int]] = []
     if settings.split_touching:
         bw, bh = cmax - cmin + 1, rmax - rmin + 1
         extent = area / np.maximum(bw * bh, 1)
         elong = np.maximum(bw, bh) / np.maximum(np.minimum(bw, bh), 1)
-        # a single round pit fills about pi/4 of its box; pairs and chains fill less or stretch it
-        for k in np.flatnonzero(big & ((extent < 0.72) | (elong > 1.3)) & (area >= 2 * min_px)):
+        # a single round or elliptic pit fills about pi/4 (0.785) of its box; pairs and chains fill
+        # less or stretch it (the split itself decides; this only spares it for plain discs)
+        for k in np.flatnonzero(big & ((extent < 0.76) | (elong > 1.15)) & (area >= 2 * min_px)):
             sl = (slice(rmin[k], rmax[k] + 1), slice(cmin[k], cmax[k] + 1))
-            obj = lab[sl] == k
-            parts = _split_object(obj, h_px=1.0)
+            sub = lab[sl]
+            obj = sub == k
+            parts = _split_object(obj)
             if parts is None:
                 continue
-            new_parts.append((sl, parts, next_id))
-            next_id += int(parts.max()) - 1
-            split_made += int(parts.max()) - 1
+            extra = int(parts.max()) - 1
+            # part 1 keeps the object's id, parts 2.. get new ids
+            ids = np.concatenate([[0, k], np.arange(next_id, next_id + extra)]).astype(np.int32)
+            np.copyto(sub, ids[parts], where=obj)
+            next_id += extra
+            split_made += extra
     lut = np.where(big, np.arange(n1), 0).astype(np.int32)
     lut = np.concatenate([lut, np.arange(n1, next_id, dtype=np.int32)])
-    for sl, parts, first in new_parts:
-        sub = lab[sl]
-        for j in range(2, int(parts.max()) + 1):
-            sub[parts == j] = first + j - 2
-    sizes = np.bincount(lab.ravel()[kidx], minlength=next_id)
+    kl = lab.ravel()[kidx]
+    sizes = np.bincount(kl, minlength=next_id)
     lut[sizes < min_px] = 0
     # objects that reach outside the analysed region are cut by its border
-    outside = np.unique(lab[keep & ~analysed])
+    outside = np.unique(kl[~analysed.ravel()[kidx]])
     outside = outside[lut[outside] > 0]
     lut[outside] = 0
-    lab = lut[lab]
+    kl = lut[kl]
+    lab.ravel()[kidx] = kl  # the labelled pixels are exactly kidx: no full-frame pass
+    on = kl > 0
     details = {
         "threshold_contrast": float(t_low), "noise_sigma": float(noise_sigma), "candidates": int(n0),
         "dropped_small": too_small, "split_added": int(split_made), "dropped_cut_by_border": int(outside.size),
         "min_pit_px": float(min_px),
     }
-    return lab, details
+    return lab, details, (kidx[on], kl[on])
 
 
 # -- 5. measurement --------------------------------------------------------------
@@ -471,8 +659,45 @@ def surface_reference(height_mm: np.ndarray, surface: np.ndarray, exclude: np.nd
         if new.sum() < 50 or np.array_equal(new, keep):
             break
         keep = new
+    lo, hi = np.percentile(res, [1, 99])
     return coef, {"residual_sigma_mm": sigma, "kept_fraction": float(keep.mean()), "scale_px": scale,
+                  "surface_spread_mm": float(hi - lo),
                   "model": "quadratic in row and col, 3-sigma clipped"}
+
+
+#: Largest spread (1st to 99th percentile) of a cleaned coupon's surface around its pits, relative
+#: to its reference surface (tilt and bow removed), that a height map may show: more is a unit mix-up.
+MAX_SURFACE_SPREAD_MM = 2.0
+
+
+def check_height_relief(reference: dict, unit: str | None = None) -> None:
+    """Refuse a height map whose coupon surface has implausible relief for its unit.
+
+    The spread of the coupon surface around its reference surface (pits left
+    out; the table or holder around the coupon plays no part, unlike the check
+    on the whole scan in :func:`coupon.io.heightmap.load_height_map`) must lie
+    between ``PLAUSIBLE_SPREAD_MM[0]`` (0.1 um: less cannot show pits) and
+    :data:`MAX_SURFACE_SPREAD_MM`.
+
+    Raises
+    ------
+    AnalysisError
+        With a one-line message naming the likely unit mistake.
+    """
+    spread = reference.get("surface_spread_mm")
+    if spread is None or not np.isfinite(spread):
+        return
+    if spread < PLAUSIBLE_SPREAD_MM[0]:
+        hint = ("are the values in millimetres? use --height-unit mm" if unit == "um" else
+                "check --height-unit" if unit is None else "check the height map")
+        raise AnalysisError(f"height map: the coupon surface varies by only {spread * 1000:.3g} um around its "
+                            f"reference surface (1st to 99th percentile), too flat to show pits; {hint}")
+    if spread > MAX_SURFACE_SPREAD_MM:
+        hint = ("are the values in micrometres? use --height-unit um" if unit == "mm" else
+                "check --height-unit" if unit is None else "check the height map")
+        raise AnalysisError(f"height map: the coupon surface varies by {spread:.4g} mm around its reference "
+                            f"surface (1st to 99th percentile), more than the {MAX_SURFACE_SPREAD_MM:g} mm a cleaned "
+                            f"coupon shows; {hint}")
 
 
 def _eval_reference(coef: np.ndarray, scale: float, rr: np.ndarray, cc: np.ndarray) -> np.ndarray:
@@ -487,10 +712,13 @@ def object_moments(labels: np.ndarray) -> dict[str, np.ndarray]:
     eigenvalues of the covariance of the pixel coordinates.  Labels without
     pixels get area 0 and NaN elsewhere.
     """
-    n = int(labels.max())
     idx = np.flatnonzero(labels)
-    lab = labels.ravel()[idx]
-    r, c = np.divmod(idx, labels.shape[1])
+    return _moments(idx, labels.ravel()[idx], int(labels.max()), labels.shape[1])
+
+
+def _moments(idx: np.ndarray, lab: np.ndarray, n: int, ncols: int) -> dict[str, np.ndarray]:
+    """:func:`object_moments` from a pixel list (flat indices, labels 1..n)."""
+    r, c = np.divmod(idx, ncols)
     r, c = r.astype(np.float64), c.astype(np.float64)
     m0 = np.bincount(lab, minlength=n + 1).astype(np.float64)
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -509,10 +737,14 @@ def object_moments(labels: np.ndarray) -> dict[str, np.ndarray]:
 
 
 def measure_pits(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | None = None,
-                 analysed: np.ndarray | None = None, band_mm: float = 5.0) -> tuple[pd.DataFrame, np.ndarray, dict]:
+                 analysed: np.ndarray | None = None, band_mm: float = 5.0,
+                 pixels: tuple[np.ndarray, np.ndarray] | None = None) -> tuple[pd.DataFrame, np.ndarray, dict]:
     """Per-pit geometry (and depth) in mm; pits renumbered 1..n in reading order.
 
     Reading order: bands ``band_mm`` tall from the top, left to right inside a band.
+    ``pixels`` (flat indices and labels of every labelled pixel, as returned by
+    :func:`segment_pits`) saves two full-frame passes; ``labels`` is then
+    renumbered in place.
 
     Returns
     -------
@@ -525,18 +757,28 @@ def measure_pits(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | N
     if height_mm is not None:
         surface = analysed if analysed is not None else np.ones(labels.shape, bool)
         coef, details = surface_reference(height_mm, surface, exclude=labels)
-    mom = object_moments(labels)
+    if pixels is None:
+        mom = object_moments(labels)
+    else:
+        mom = _moments(pixels[0], pixels[1], int(pixels[1].max()) if pixels[1].size else 0, labels.shape[1])
     present = np.flatnonzero(mom["area"] > 0)
     present = present[present > 0]
     if present.size == 0:
         empty = pd.DataFrame({c: pd.Series(dtype=float) for c in PIT_COLUMNS}).astype({"pit_id": int})
-        return empty, np.zeros_like(labels), details
+        if pixels is None:
+            return empty, np.zeros_like(labels), details
+        labels.ravel()[pixels[0]] = 0
+        return empty, labels, details
     row, col = mom["row"][present], mom["col"][present]
     order = np.lexsort((col, np.floor(row / (band_mm * s))))
     old = present[order]
-    lut = np.zeros(int(labels.max()) + 1, np.int32)
+    lut = np.zeros(len(mom["area"]), np.int32)
     lut[old] = np.arange(1, len(old) + 1, dtype=np.int32)
-    new_labels = lut[labels]
+    if pixels is None:
+        new_labels = lut[labels]
+    else:
+        new_labels = labels
+        new_labels.ravel()[pixels[0]] = lut[pixels[1]]
     area = mom["area"][old] / s**2
     major, minor = mom["major"][old] / s, mom["minor"][old] / s
     depth = np.full(len(old), np.nan)
@@ -563,7 +805,8 @@ def measure_pits(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | N
 
 # -- all steps -------------------------------------------------------------------
 
-def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray | None = None) -> PitAnalysis:
+def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray | None = None, *,
+                 homography_px_to_mm: np.ndarray | None = None, height_unit: str | None = None) -> PitAnalysis:
     """Find, split and measure the pits of one cleaned coupon image.
 
     Parameters
@@ -573,6 +816,12 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
     settings : PitSettings
     height_mm : (M, N) ndarray of float, optional
         Surface height in mm registered pixel for pixel (NaN where missing).
+    homography_px_to_mm : (3, 3) ndarray, optional
+        The profile's homography (image px -> plane mm).  An oblique view is first
+        rectified to a mm grid at ``settings.px_per_mm`` (:func:`rectify_view`); a
+        square-on one is used as it is; one beyond 35 degrees is refused.
+    height_unit : {'um', 'mm'}, optional
+        The unit the height map was declared in, for the hint of the relief check.
 
     Raises
     ------
@@ -587,6 +836,12 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
             f"height map is {height_mm.shape[1]}x{height_mm.shape[0]} px but the image is "
             f"{grey.shape[1]}x{grey.shape[0]} px (width x height); it must be registered pixel for pixel")
     s = settings.px_per_mm
+    rectified = None
+    if homography_px_to_mm is not None:
+        rect = rectify_view(rgb, homography_px_to_mm, s, height_mm)
+        if rect is not None:
+            rgb, height_mm, rectified = rect
+            grey = grey_level(rgb)
     region = find_region(grey, settings.edge_mm * s, settings.whole_frame)
     coupon, analysed = region.coupon, region.analysed
     area_px = int(np.count_nonzero(analysed))
@@ -599,19 +854,25 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
     if clipped > 0.05:
         raise AnalysisError(f"coupon surface is overexposed ({100 * clipped:.0f} % of its pixels clipped at white); "
                             "reduce the exposure so the metal is not saturated")
-    contrast = flatten(grey, coupon, settings.flatten_mm * s)
+    background = background_level(grey, coupon, settings.flatten_mm * s)
+    smooth = smooth_grey(grey)
     del grey
-    sample = contrast[::step, ::step][a_sub]
+    sample = smooth[::step, ::step][a_sub] / background[::step, ::step][a_sub] - 1.0
     noise = 1.4826 * float(np.median(np.abs(sample - np.median(sample)))) if sample.size else 0.0
-    labels, details = segment_pits(contrast, coupon, analysed, settings, noise)
-    del contrast
+    labels, details, pixels = segment_pits(smooth, background, coupon, analysed, settings, noise)
+    del smooth, background
     # pit walls just outside the outlines are clipped as outliers by the reference fit
-    table, labels, ref = measure_pits(labels, s, height_mm, analysed)
+    table, labels, ref = measure_pits(labels, s, height_mm, analysed, pixels=pixels)
     if ref:
         details["reference_surface"] = ref
+        check_height_relief(ref, height_unit)
     details["clipped_pct"] = 100 * clipped
     details["region"] = region.method
+    details["perspective"] = rectified if rectified is not None else (
+        "no homography: the picture is taken as square-on" if homography_px_to_mm is None
+        else "homography square-on within 1 %: picture used as it is")
     return PitAnalysis(
         pits=table, labels=labels, coupon=coupon, analysed=analysed,
         analysed_area_mm2=area_px / s**2, perimeter_mm=region_perimeter_px(analysed) / s, details=details,
+        rectified_rgb=rgb if rectified is not None else None,
     )

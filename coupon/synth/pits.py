@@ -90,7 +90,7 @@ def pitted_coupon_scene(
     touching_pairs: int = 6, near_edge: int = 8, edge_mm: float = 2.0, depth_mm: tuple[float, float] = (0.04, 0.45),
     texture: str = "brushed", look: str = "dark", light: float = 0.2, blur_px: float = 0.6,
     noise: float = 0.01, jpeg_quality: int | None = 90, tilt_mm_per_mm: tuple[float, float] = (0.002, -0.001),
-    roughness_mm: float = 0.0015,
+    roughness_mm: float = 0.0015, layout: tuple | None = None,
 ) -> tuple[np.ndarray, np.ndarray, dict]:
     """A scanned, cleaned coupon with known pits; its height map; the truth.
 
@@ -108,6 +108,8 @@ def pitted_coupon_scene(
         Edge band the analysis will leave out (placement of near-edge pits and the truth).
     depth_mm : (min, max)
         Pit depths, uniform, below the surrounding surface.
+    layout : (xs_mm, ys_mm, radii_mm, kinds), optional
+        Pits placed by the caller (coupon frame, mm) instead of at random.
 
     Returns
     -------
@@ -133,7 +135,11 @@ def pitted_coupon_scene(
     x0_mm, y0_mm = x0_px / s, y0_px / s
     cw, ch = cw_px / s, ch_px / s  # exact on the pixel grid
 
-    xs, ys, rs, kinds = _place_pits(rng, (cw, ch), n_pits, radius_mm, touching_pairs, edge_mm, near_edge)
+    if layout is None:
+        xs, ys, rs, kinds = _place_pits(rng, (cw, ch), n_pits, radius_mm, touching_pairs, edge_mm, near_edge)
+    else:
+        xs, ys, rs = (np.asarray(v, float) for v in layout[:3])
+        kinds = list(layout[3])
     depths = rng.uniform(depth_mm[0], depth_mm[1], len(xs))
     floors = rng.uniform(0.18, 0.4, len(xs))  # reflectance of a pit floor relative to the surface
 
@@ -219,3 +225,76 @@ def pitted_coupon_scene(
         },
     }
     return img.astype(np.float32), hmap, truth
+
+
+def touching_pairs_scene(seed: int = 0, n_pairs: int = 24, px_per_mm: float = 20.0,
+                         big_radius_mm: tuple[float, float] = (0.7, 1.3), size_ratio: tuple[float, float] = (0.3, 0.6),
+                         overlap: tuple[float, float] = (0.93, 0.99), spacing_mm: float = 5.0, **kw
+                         ) -> tuple[np.ndarray, np.ndarray, dict]:
+    """Touching pairs of unequal pits (a small pit merged into a larger one), on a grid.
+
+    Each pair: a large pit of radius ``big_radius_mm`` (uniform) and a partner of
+    ``size_ratio`` times that radius, centres ``overlap`` times the sum of radii apart
+    (the openings just merge), at a random angle.  Other arguments go to
+    :func:`pitted_coupon_scene`.  ``truth["pairs"]`` lists the two pit indices of
+    each pair in ``truth["pits"]``.
+    """
+    rng = common.rng_for(seed + 7_000_003)
+    cols = int(np.ceil(np.sqrt(n_pairs * 1.5)))
+    rows = int(np.ceil(n_pairs / cols))
+    edge_mm = kw.get("edge_mm", 2.0)
+    cw, ch = cols * spacing_mm + 2 * edge_mm + 2, rows * spacing_mm + 2 * edge_mm + 2
+    xs, ys, rs, kinds, pairs = [], [], [], [], []
+    for k in range(n_pairs):
+        cx = edge_mm + 1 + (k % cols + 0.5) * spacing_mm
+        cy = edge_mm + 1 + (k // cols + 0.5) * spacing_mm
+        r1 = rng.uniform(*big_radius_mm)
+        r2 = r1 * rng.uniform(*size_ratio)
+        ang = rng.uniform(0, 2 * np.pi)
+        d = (r1 + r2) * rng.uniform(*overlap)
+        # the pair's centroid of area at the cell centre, so both pits stay inside the cell
+        w2 = r2 * r2 / (r1 * r1 + r2 * r2)
+        x1, y1 = cx - w2 * d * np.cos(ang), cy - w2 * d * np.sin(ang)
+        pairs.append((len(xs), len(xs) + 1))
+        xs += [x1, x1 + d * np.cos(ang)]
+        ys += [y1, y1 + d * np.sin(ang)]
+        rs += [r1, r2]
+        kinds += ["touching", "touching"]
+    rgb, height, truth = pitted_coupon_scene(seed=seed, coupon_mm=(cw, ch), px_per_mm=px_per_mm,
+                                             layout=(xs, ys, rs, kinds), **kw)
+    truth["pairs"] = pairs
+    return rgb, height, truth
+
+
+def tilted_coupon_scene(seed: int = 0, tilt_deg: float = 30.0, image_wh: tuple[int, int] = (1500, 1100),
+                        px_per_mm: float = 18.0, plane_px_per_mm: float = 36.0, noise: float = 0.01,
+                        jpeg_quality: int | None = 90, **kw) -> tuple[np.ndarray, np.ndarray, dict]:
+    """A cleaned coupon photographed obliquely (camera tilted about the image's x axis).
+
+    The coupon and its cloth are drawn as a plane picture at ``plane_px_per_mm``
+    (finer than the photo, so the projection is area-sampled), then projected by a
+    pinhole camera (:func:`coupon.synth.common.camera_homography`) about
+    ``px_per_mm`` at the image centre, with noise and JPEG after the projection.
+
+    Returns
+    -------
+    rgb : (M, N, 3) ndarray of float32
+    homography_px_to_mm : (3, 3) ndarray
+        Image px -> plane mm (what a checkerboard calibration in the coupon's plane gives).
+    truth : dict
+        As :func:`pitted_coupon_scene` (positions in plane mm), plus ``tilt_deg``.
+    """
+    plane, _, truth = pitted_coupon_scene(seed=seed, px_per_mm=plane_px_per_mm, noise=0.0, jpeg_quality=None,
+                                          blur_px=0.0, **kw)
+    rng = common.rng_for(seed + 1_000_003)
+    size_mm = (plane.shape[1] / plane_px_per_mm, plane.shape[0] / plane_px_per_mm)
+    hom = common.camera_homography(size_mm, image_wh, px_per_mm, tilt_x_deg=tilt_deg)
+    bg = common.desk_background(image_wh[::-1], rng, colour=(0.16, 0.18, 0.22))
+    img, _ = common.render_plane(plane, plane_px_per_mm, hom, image_wh, bg)
+    img = cv2.GaussianBlur(img, (0, 0), 0.5)
+    img = common.sensor_noise(img, rng, noise)
+    if jpeg_quality:
+        img = common.jpeg_roundtrip(img, jpeg_quality)
+    truth["tilt_deg"] = float(tilt_deg)
+    truth["plane_px_per_mm"] = float(plane_px_per_mm)
+    return img.astype(np.float32), np.linalg.inv(hom), truth

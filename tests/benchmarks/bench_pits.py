@@ -3,7 +3,9 @@
 Prints, measured in one run: the decode time of the JPEG (``load_image``), the core
 analysis time (``analyse_pits``), the full per-image job (analysis, height map,
 figures, JSON: what ``coupon pits`` does per image), their ratios to the decode time
-(goal: full analysis <= 4 x decode) and the peak memory of the process.
+(goal: the full per-image job, minus its own decode, <= 4 x decode) and the peak
+memory of the process.  Steps are interleaved over the repeats and the fastest
+run of each counts, so a busy machine hurts all ratios alike.
 
     /work/venv/bin/python tests/benchmarks/bench_pits.py [--repeat 3]
 """
@@ -60,24 +62,29 @@ def main() -> None:
           f"{truth['counted']['count']} pits counted in truth, generated in {time.perf_counter() - t:.1f} s")
     path = tmp / "scan24.jpg"
     rss0 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    t_decode, img = best_of(lambda: load_image(path), args.repeat)
     settings = PitSettings(px_per_mm=40.0)
-    t_core, res = best_of(lambda: analyse_pits(img.rgb, settings), args.repeat)
     job = PitJob(settings, tmp / "out", 250_000_000, height_map=str(tmp / "scan24_height.tiff"), height_unit="um")
     (tmp / "out").mkdir()
-    t_full, rows = best_of(lambda: pit_rows_for_image(path, job), args.repeat)
-    t_job_decode = t_decode  # the full job decodes the image itself: subtract for the analysis part
+    t_decode = t_core = t_full = float("inf")
+    rows = None
+    for _ in range(args.repeat):  # interleaved: a burst of load from others hits every step alike
+        td, img = best_of(lambda: load_image(path), 1)
+        tc, _ = best_of(lambda: analyse_pits(img.rgb, settings), 1)
+        del img
+        tf, rows = best_of(lambda: pit_rows_for_image(path, job), 1)
+        t_decode, t_core, t_full = min(t_decode, td), min(t_core, tc), min(t_full, tf)
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     s = rows["summary"]
-    print(f"decode (load_image)               {t_decode:6.3f} s")
-    print(f"core analysis (analyse_pits)      {t_core:6.3f} s   ratio {t_core / t_decode:5.2f} x decode")
-    print(f"full job incl. decode, height map, figures, JSON "
-          f"{t_full:6.3f} s   ratio {(t_full - t_job_decode) / t_decode:5.2f} x decode (analysis part)")
+    full_ratio = (t_full - t_decode) / t_decode  # the full job decodes the image itself: subtract it
+    print(f"decode (load_image)                    {t_decode:6.3f} s")
+    print(f"core analysis (analyse_pits, no height map) {t_core:6.3f} s   ratio {t_core / t_decode:5.2f} x decode")
+    print(f"full job (decode, height map, analysis, overlay, histogram, JSON) {t_full:6.3f} s   "
+          f"ratio {full_ratio:5.2f} x decode without its decode ({t_full / t_decode:5.2f} x with it)")
     print(f"pits found {s['pit_count']} (truth {truth['counted']['count']}), deepest {s['max_depth_mm']:.3f} mm "
-          f"(truth {truth['counted']['max_depth_mm']:.3f})")
+          f"(truth {truth['counted']['max_depth_mm']:.3f}); overlay {Path(s['overlay']).name}")
     print(f"peak memory (max RSS of this process) {peak:.0f} MiB (at start {rss0:.0f} MiB; the decoded image alone "
-          f"is {img.rgb.nbytes / 2**20:.0f} MiB of float32)")
-    print("goal: core analysis <= 4 x decode:", "met" if t_core / t_decode <= 4 else "NOT met")
+          f"is {4 * shape[0] * shape[1] * 3 / 2**20:.0f} MiB of float32)")
+    print("goal: full job <= 4 x decode (without its decode):", "met" if full_ratio <= 4 else "NOT met")
 
 
 if __name__ == "__main__":
