@@ -2,10 +2,14 @@
 
     /work/venv/bin/python tests/benchmarks/bench_droplet.py [--frames 200] [--distinct 6]
 
-Prints, measured in this run: the mean decode time of a frame (``load_image``), the
-command's time per frame with and without per-frame pictures, their ratio to the
-decode time (goal <= 3), and the resident memory (RSS) early and late in the run
-(streaming: it must not grow with the number of frames).
+Prints, measured in this run: the median decode time of a frame (``load_image``,
+measured before and after the series runs), then for two runs of the command over
+the same frames, without and with per-frame pictures: the time per frame of the
+frame loop and its ratio to the decode time (goal <= 3), the time per frame
+including the series part (summary figures, tables), and the resident memory
+(RSS) when the first tenth of the frames is done and when the last frame is done
+(streaming: it must not grow with the number of frames).  Progress is read from
+the per-frame TIFFs as they appear in the output folder.
 """
 
 from __future__ import annotations
@@ -31,36 +35,54 @@ def rss_mb() -> float:
 
 
 class RssSampler(threading.Thread):
-    def __init__(self, period_s: float = 0.1):
+    """RSS and frames done (``*_ph.tiff`` files in the output's ``frames/``) every ``period_s``."""
+
+    def __init__(self, frames_dir: Path, period_s: float = 0.05):
         super().__init__(daemon=True)
-        self.samples: list[tuple[float, float]] = []
+        self.frames_dir = frames_dir
+        self.samples: list[tuple[float, float, int]] = []
         self.period_s = period_s
         self._halt = threading.Event()
+        self.t0 = time.perf_counter()
+
+    def _done(self) -> int:
+        try:
+            return sum(1 for n in os.listdir(self.frames_dir) if n.endswith("_ph.tiff") and not n.startswith("."))
+        except FileNotFoundError:
+            return 0
 
     def run(self):
-        t0 = time.perf_counter()
         while not self._halt.is_set():
-            self.samples.append((time.perf_counter() - t0, rss_mb()))
+            self.samples.append((time.perf_counter() - self.t0, rss_mb(), self._done()))
             time.sleep(self.period_s)
 
     def stop(self):
         self._halt.set()
         self.join()
+        self.samples.append((time.perf_counter() - self.t0, rss_mb(), self._done()))
+
+    def first(self, n_done: int) -> tuple[float, float]:
+        """(time, RSS) of the first sample with at least ``n_done`` frames written."""
+        for t, r, k in self.samples:
+            if k >= n_done:
+                return t, r
+        return self.samples[-1][0], self.samples[-1][1]
 
 
 def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--frames", type=int, default=200)
     ap.add_argument("--distinct", type=int, default=6, help="distinct rendered frames (the rest are hard links)")
-    ap.add_argument("--figure-frames", type=int, default=20, help="frames of the run with per-frame pictures")
+    ap.add_argument("--figure-frames", type=int, default=0,
+                    help="frames of the run with per-frame pictures (default: all)")
     args = ap.parse_args()
 
-    import dataclasses
-
+    import numpy as np
     from click.testing import CliRunner
 
     from coupon.cli.main import cli
     from coupon.io.images import load_image
+    from coupon.segment import droplet as droplet_core
     from coupon.synth.common import encode_jpeg
     from coupon.synth.droplet import DropletSeriesSpec, _Static, render_frame
     from tests.droplet_support import write_profile
@@ -88,40 +110,50 @@ def main() -> None:
               f"series of {args.frames} frames")
         prof = write_profile(tmp / "profile.json", spec.px_per_mm)
 
-        # decode time: load_image (read, hash, header, decode, float conversion)
-        dec = []
-        for p in distinct * 3:
-            t = time.perf_counter()
-            load_image(p)
-            dec.append(time.perf_counter() - t)
-        decode_s = sorted(dec)[len(dec) // 2]
+        def decode_times():
+            out = []
+            for p in distinct * 3:
+                t = time.perf_counter()
+                load_image(p)
+                out.append(time.perf_counter() - t)
+            return out
 
         def run(paths, extra, out):
-            sampler = RssSampler()
-            sampler.start()
+            # start cold, as a new command process would: no colour tables kept from the previous run
+            getattr(droplet_core, "_TABLES", {}).clear()
+            sampler = RssSampler(out / "frames")
             t = time.perf_counter()
+            sampler.t0 = t
+            sampler.start()
             res = CliRunner().invoke(cli, ["droplet", *map(str, paths), "--profile", str(prof), "--out", str(out),
                                            *extra], catch_exceptions=False)
-            dt = time.perf_counter() - t
+            total = time.perf_counter() - t
             sampler.stop()
             assert res.exit_code == 0, res.output
-            return dt / len(paths), sampler.samples
+            n = len(paths)
+            t_loop, rss_end = sampler.first(n)
+            _, rss_start = sampler.first(max(1, n // 10))
+            peak = max(r for _, r, _ in sampler.samples)
+            return {"loop": t_loop / n, "total": total / n, "rss_start": rss_start, "rss_end": rss_end,
+                    "peak": peak}
 
         all_frames = sorted(frames.iterdir())
-        per_nofig, samples = run(all_frames, ["--no-frame-figures"], tmp / "out1")
-        per_fig, _ = run(all_frames[:args.figure_frames], [], tmp / "out2")
+        dec = decode_times()
+        nofig = run(all_frames, ["--no-frame-figures"], tmp / "out1")
+        fig = run(all_frames[:args.figure_frames or None], [], tmp / "out2")
+        dec += decode_times()
+        decode_s = float(np.median(dec))
 
-    n = len(samples)
-    early = max(r for _, r in samples[n // 10: n // 4 + 1])
-    # the last tenth is the series part (summary pictures import matplotlib once): not per-frame memory
-    late = max(r for _, r in samples[3 * n // 4: 9 * n // 10 + 1])
-    end = max(r for _, r in samples)
-    print(f"decode (load_image, median)         : {decode_s * 1000:7.1f} ms per frame")
-    print(f"droplet, no per-frame pictures      : {per_nofig * 1000:7.1f} ms per frame  ratio {per_nofig / decode_s:5.2f}"
-          f"  (goal <= 3)")
-    print(f"droplet, with per-frame pictures    : {per_fig * 1000:7.1f} ms per frame  ratio {per_fig / decode_s:5.2f}")
-    print(f"RSS over {args.frames} frames (10-25 % vs 75-90 % of the run): early {early:.0f} MB, late {late:.0f} MB, "
-          f"growth {late - early:+.0f} MB (streaming: should stay near 0); peak incl. series pictures {end:.0f} MB")
+    n_fig = args.figure_frames or args.frames
+    print(f"decode (load_image, median of {len(dec)}, before and after): {decode_s * 1000:7.1f} ms per frame "
+          f"(range {min(dec) * 1000:.0f}-{max(dec) * 1000:.0f} ms)")
+    for label, r, n in (("no per-frame pictures  ", nofig, args.frames), ("with per-frame pictures", fig, n_fig)):
+        print(f"droplet, {label} ({n} frames): frame loop {r['loop'] * 1000:6.1f} ms per frame, "
+              f"ratio {r['loop'] / decode_s:5.2f} (goal <= 3); incl. series part {r['total'] * 1000:6.1f} ms, "
+              f"ratio {r['total'] / decode_s:5.2f}")
+        print(f"    RSS after {max(1, n // 10)} frames {r['rss_start']:.0f} MB, after all {n} frames "
+              f"{r['rss_end']:.0f} MB (growth {r['rss_end'] - r['rss_start']:+.0f} MB; streaming: near 0), "
+              f"peak incl. series pictures {r['peak']:.0f} MB")
 
 
 if __name__ == "__main__":
