@@ -50,6 +50,13 @@ RUST_ENDMEMBERS_SRGB = (
 #: A rust colour wins when its residual is below this share of the neutral cone's residual.
 RUST_WINS_RATIO = 0.7
 
+#: Below this tint (norm of the grey direction's part perpendicular to the unit coating colour) the
+#: neutral model is the line through the coating colour, not the wedge between coating and grey.
+NEUTRAL_PLANE_MIN_TINT = 0.03
+
+#: A site's largest hidden fraction must exceed this many noise sigmas of the fraction.
+PEAK_FRACTION_SIGMA = 6.0
+
 #: Relative standard uncertainty of the unmixed rust area from the colour model (coupon's estimate).
 COLOUR_MODEL_REL_UNC = 0.10
 
@@ -208,6 +215,26 @@ def _channels(a: np.ndarray) -> np.ndarray:
     return a[..., None] if a.ndim == 2 else a
 
 
+def _neutral_residual(img: np.ndarray, u1: np.ndarray, normals: np.ndarray, plane: list) -> tuple[np.ndarray, np.ndarray]:
+    """Component along the coating colour and squared distance from the neutral wedge (or line).
+
+    Dirt (a grey mixed in) and glare (white added) give ``p = alpha c + gamma grey`` with alpha and
+    gamma >= 0: a wedge, not the whole plane of ``c`` and grey.  On a nearly grey coating the plane
+    holds the blue-yellow axis of its faint tint and so explains most of the colour of rust; the
+    wedge there is only a few degrees wide.  The in-plane distance from the wedge is added to the
+    distance from the plane.
+    """
+    t = _channels(cv2.transform(img, np.vstack([u1, normals, *plane[1:]]).astype(np.float32)))
+    perp2 = (t[..., 1:1 + normals.shape[0]] ** 2).sum(axis=-1)
+    if len(plane) > 1:
+        grey = np.ones(3) / np.sqrt(3)
+        x, y = t[..., 0], t[..., 2]
+        gx, gy = np.float32(grey @ u1), np.float32(grey @ plane[1])
+        beyond = x * gy - y * gx  # < 0: past the grey edge of the wedge
+        perp2 = perp2 + np.minimum(y, 0) ** 2 + np.minimum(beyond, 0) ** 2
+    return t[..., 0], perp2
+
+
 def unmix(lin: np.ndarray, valid: np.ndarray, px_per_mm: float,
           endmembers_srgb=RUST_ENDMEMBERS_SRGB, coating_linear: np.ndarray | None = None) -> ColourModel:
     """Unmix every pixel of a rectified panel into coating, rust and neutral marks.
@@ -243,15 +270,14 @@ def unmix(lin: np.ndarray, valid: np.ndarray, px_per_mm: float,
     cn = float(np.sqrt(c @ c))
     u1 = c / cn
     g_perp = grey - (grey @ u1) * u1
-    plane = [u1] + ([g_perp / np.linalg.norm(g_perp)] if np.linalg.norm(g_perp) > 0.03 else [])
+    plane = [u1] + ([g_perp / np.linalg.norm(g_perp)] if np.linalg.norm(g_perp) > NEUTRAL_PLANE_MIN_TINT else [])
     # normals of the neutral plane (one), or of the neutral line when the coating is grey (two)
     _, _, vt = np.linalg.svd(np.array(plane))
     normals = vt[len(plane):]
-    t = cv2.transform(lin, np.vstack([u1, normals]).astype(np.float32))
-    a_n = t[..., 0] / np.float32(cn)  # brightness relative to the coating
-    perp2 = (t[..., 1:] ** 2).sum(axis=2) if normals.shape[0] > 1 else t[..., 1] ** 2
+    along, perp2 = _neutral_residual(lin, u1, normals, plane)
+    a_n = along / np.float32(cn)  # brightness relative to the coating
     light = _smooth_light(a_n, valid, px_per_mm)
-    # distance from the neutral plane, relative to the local coating brightness
+    # distance from the neutral wedge (or line), relative to the local coating brightness
     dev = np.sqrt(perp2) / (np.float32(cn) * light)
     vidx = _sample_idx(valid)
     med, sigma = _robust(dev.ravel()[vidx])
@@ -289,9 +315,10 @@ def unmix(lin: np.ndarray, valid: np.ndarray, px_per_mm: float,
     # while the lightness test would add the JPEG ringing around the bright speck
     if k >= 3 and y_sig > 0 and y_c > float(np.median(rust_y)):
         # pooled deviation from the coating (per light level), and its distance from the neutral plane
-        qb = cv2.boxFilter(lin / light[..., None], -1, (k, k), normalize=True) - c32
-        tb = _channels(cv2.transform(qb, normals.astype(np.float32)))
-        dev_b = np.sqrt((tb ** 2).sum(axis=2)) / np.float32(cn)
+        pb = cv2.boxFilter(lin / light[..., None], -1, (k, k), normalize=True)
+        qb = pb - c32
+        _, tb2_img = _neutral_residual(pb, u1, normals, plane)
+        dev_b = np.sqrt(tb2_img) / np.float32(cn)
         b_med, b_sig = _robust(dev_b.ravel()[vidx])
         strong = np.abs(dy - y_med) > 2 * y_sig
         lean = dev_b > b_med + 3 * b_sig
@@ -299,7 +326,7 @@ def unmix(lin: np.ndarray, valid: np.ndarray, px_per_mm: float,
         if cand_b.size and b_sig > 0:
             qv = qb.reshape(-1, 3)[cand_b]
             qq = np.einsum("ij,ij->i", qv, qv)
-            tb2 = (tb.reshape(-1, tb.shape[2])[cand_b] ** 2).sum(axis=1)
+            tb2 = tb2_img.ravel()[cand_b]
             bf, bk, _ = _best_rust(qv, qq, RUST_WINS_RATIO * tb2, rust_dev)
             ok = np.isfinite(bf)
             ids, kk = cand_b[ok], bk[ok].astype(int)
@@ -365,13 +392,17 @@ def _sites(model: ColourModel, rated: np.ndarray, px_per_mm: float, low: float, 
     lab = labels.ravel()[gidx]
     order = np.argsort(lab, kind="stable")
     peak = np.zeros(n, np.float32)
+    peak_f = np.zeros(n, np.float32)
     if gidx.size:
-        sl, sv = lab[order], model.score.ravel()[gidx][order]
+        sl = lab[order]
         starts = np.flatnonzero(np.r_[True, sl[1:] != sl[:-1]])
-        peak[sl[starts]] = np.maximum.reduceat(sv, starts)
+        peak[sl[starts]] = np.maximum.reduceat(model.score.ravel()[gidx][order], starts)
+        peak_f[sl[starts]] = np.maximum.reduceat(model.fraction.ravel()[gidx][order], starts)
     total = np.bincount(lab, weights=model.fraction.ravel()[gidx], minlength=n)
     count = np.bincount(lab, minlength=n)
-    keep = (peak > high) & (total > 5 * sf * np.sqrt(count))
+    # the hidden fraction must also peak clearly out of its own noise: JPEG's blocky chroma errors
+    # reach high colour scores (the chroma noise is tiny between them) with no real cover behind them
+    keep = (peak > high) & (total > 5 * sf * np.sqrt(count)) & (peak_f > PEAK_FRACTION_SIGMA * sf)
     keep[0] = False
     relabel = np.zeros(n, np.int32)
     relabel[keep] = np.arange(1, int(keep.sum()) + 1)

@@ -46,6 +46,15 @@ class ScribeSettings:
 
 SCRIBE_MODES = ("auto", "none", "line", "x")
 
+#: A piece of band shorter than this (mm) at the end of a scribe, behind a gap, is a rust spot.
+END_PIECE_MM = 8
+
+#: A second line (X scribe) must be at least this share as long as the first.
+SECOND_LINE_SHARE = 0.6
+
+#: Share of a coarse (0.5 mm) cell that must hold defect pixels for the line search.
+COARSE_CELL_SHARE = 0.3
+
 
 @dataclass(frozen=True)
 class ScribeResult:
@@ -99,9 +108,11 @@ class ScribeResult:
             p0, p1 = np.asarray(p0), np.asarray(p1)
             u = (p1 - p0) / np.linalg.norm(p1 - p0)
             a, b = p0 - 2 * u, p1 + 2 * u
-            pts = np.array([a, b]) * px_per_mm - 0.5
-            cv2.line(mask, tuple(np.rint(pts[0] * 16).astype(int)), tuple(np.rint(pts[1] * 16).astype(int)), 1,
-                     thickness=max(1, int(round(2 * half * px_per_mm))), lineType=cv2.LINE_8, shift=4)
+            n = np.array([-u[1], u[0]]) * max(half, 0.5 / px_per_mm)
+            # square ends 2 mm past the scribe ends (round caps of the zone's half width would take
+            # in rust beyond the ends of a wide corrosion zone)
+            quad = (np.array([a + n, b + n, b - n, a - n]) * px_per_mm - 0.5) * 16
+            cv2.fillPoly(mask, [np.rint(quad).astype(np.int32).reshape(-1, 1, 2)], 1, lineType=cv2.LINE_8, shift=4)
         return mask.astype(bool)
 
 
@@ -122,9 +133,12 @@ def _projection(xy: np.ndarray, w: np.ndarray, theta: float, bin_mm: float):
 def _find_lines(defect: np.ndarray, px_per_mm: float, settings: ScribeSettings, want: int | None):
     coarse = 2.0  # px/mm of the search
     f = coarse / px_per_mm
-    small = cv2.resize(defect, (max(2, int(defect.shape[1] * f)), max(2, int(defect.shape[0] * f))),
-                       interpolation=cv2.INTER_AREA)
-    rr, cc = np.nonzero(small > 0.5)
+    # share of defect pixels per coarse cell: a thin band (a cut with little creep, 2 to 3 photo
+    # pixels wide) fills a fifth to a half of a 0.5 mm cell, and averaging the defect values
+    # themselves would lose it
+    small = cv2.resize((defect > 0.5).astype(np.float32), (max(2, int(defect.shape[1] * f)),
+                       max(2, int(defect.shape[0] * f))), interpolation=cv2.INTER_AREA)
+    rr, cc = np.nonzero(small > COARSE_CELL_SHARE)
     if rr.size < 10:
         return []
     xy = np.column_stack([(cc + 0.5) / coarse, (rr + 0.5) / coarse])
@@ -143,6 +157,8 @@ def _find_lines(defect: np.ndarray, px_per_mm: float, settings: ScribeSettings, 
                 best = (length, th)
         if best is None or best[0] < settings.min_length_mm:
             break
+        if found and best[0] < SECOND_LINE_SHARE * found[0][1]:
+            break  # the arms of an X are about equally long; a weaker band is scattered rust
         # fine angle: the projection is sharpest when aligned with the band
         fine = best[1] + np.deg2rad(np.arange(-1.5, 1.51, 0.1))
         th = max(fine, key=lambda t: float((_projection(xy, wts, t, 0.25)[0] ** 2).sum()))
@@ -172,26 +188,45 @@ def _find_lines(defect: np.ndarray, px_per_mm: float, settings: ScribeSettings, 
         if t.size < 10:
             continue
         # extent: longest run of 1 mm cells along the line that hold defect pixels (gaps <= 3 mm)
-        bins = np.bincount(np.floor(t - t.min()).astype(int))
-        occ = bins >= 0.5 * px_per_mm
-        runs, start, gap = [], None, 0
-        for i, o in enumerate(occ):
-            if o:
-                start = i if start is None else start
-                gap, last = 0, i
-            elif start is not None:
-                gap += 1
-                if gap > 3:
-                    runs.append((start, last))
-                    start = None
-        if start is not None:
-            runs.append((start, last))
-        s0, s1 = max(runs, key=lambda r: r[1] - r[0])
+        s0, s1 = _longest_run(np.floor(t - t.min()).astype(int), px_per_mm)
         if s1 - s0 < settings.min_length_mm:
             continue
         t0, t1 = t.min() + s0, t.min() + s1 + 1
         lines.append((rho * nrm + t0 * u, rho * nrm + t1 * u))
     return lines
+
+
+def _longest_run(cells: np.ndarray, px_per_mm: float, share: float = 0.5, max_gap: int = 3) -> tuple[int, int]:
+    """First and last 1 mm cell of the longest chain of occupied cells along a line.
+
+    A cell is occupied when it holds ``share * px_per_mm`` defect pixels.  Pieces of occupied cells
+    join across gaps of up to ``max_gap`` cells (a stretch of cut without corrosion), but a short
+    piece (under :data:`END_PIECE_MM`) at either end of a chain, behind a gap of 2 cells or more,
+    is dropped: that is a rust spot just past the scribe end, and it would carry the scribe zone
+    (left out of the rust rating) over itself.
+    """
+    occ = np.bincount(cells) >= share * px_per_mm
+    if not occ.any():
+        return 0, 0
+    edges = np.diff(np.r_[0, occ.astype(np.int8), 0])
+    pieces = list(zip(np.flatnonzero(edges == 1), np.flatnonzero(edges == -1) - 1))
+    chains, cur = [], [pieces[0]]
+    for pc in pieces[1:]:
+        if pc[0] - cur[-1][1] - 1 <= max_gap:
+            cur.append(pc)
+        else:
+            chains.append(cur)
+            cur = [pc]
+    chains.append(cur)
+    best = (0, 0)
+    for ch in chains:
+        while len(ch) > 1 and ch[-1][1] - ch[-1][0] + 1 < END_PIECE_MM and ch[-1][0] - ch[-2][1] - 1 >= 2:
+            ch = ch[:-1]
+        while len(ch) > 1 and ch[0][1] - ch[0][0] + 1 < END_PIECE_MM and ch[1][0] - ch[0][1] - 1 >= 2:
+            ch = ch[1:]
+        if ch[-1][1] - ch[0][0] > best[1] - best[0]:
+            best = (int(ch[0][0]), int(ch[-1][1]))
+    return best
 
 
 def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, float],
