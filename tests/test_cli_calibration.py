@@ -313,3 +313,18 @@ def test_phmap_redoes_a_damaged_summary_with_a_warning(runner, scenes, tmp_path)
     assert r.exit_code == 0, r.output
     assert "warning:" in r.output and "cannot be read back" in r.output
     assert "ph_median" in (out / "phmap.csv").read_text()
+
+
+def test_resume_ledger_is_written_at_the_end_and_every_few_seconds(tmp_path, monkeypatch):
+    from coupon.io.batch import ResumeLedger
+
+    led = ResumeLedger(tmp_path, "x")
+    monkeypatch.setattr(ResumeLedger, "FLUSH_EVERY_S", 3600.0)
+    led.record(tmp_path / "a.jpg", "ab", "s1", [])
+    assert not led.path.exists()  # not rewritten after every item
+    led.flush()
+    again = ResumeLedger(tmp_path, "x")
+    assert again.is_done(tmp_path / "a.jpg", "ab", "s1") and not again.is_done(tmp_path / "a.jpg", "ab", "s2")
+    monkeypatch.setattr(ResumeLedger, "FLUSH_EVERY_S", 0.0)
+    led.record(tmp_path / "b.jpg", "cd", "s1", [])
+    assert ResumeLedger(tmp_path, "x").is_done(tmp_path / "b.jpg", "cd", "s1")  # written when due

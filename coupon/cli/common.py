@@ -108,14 +108,21 @@ def db_option(f):
 
 
 def record_rows(db, command: str, image, sha256: str | None, settings: dict, profile_sha256: str | None,
-                tables: dict, **keys) -> bool:
-    """Record one image's rows in the campaign database; a failure is reported, not raised."""
-    from coupon.campaign.store import record_results
+                tables: dict, store=None, **keys) -> bool:
+    """Record one image's rows in the campaign database; a failure is reported, not raised.
 
+    ``store`` (an open :class:`~coupon.campaign.store.CampaignStore`) saves reopening the
+    database for every image of a long series.
+    """
     import sqlite3
 
+    from coupon.campaign.store import record_results
+
     try:
-        record_results(db, command, image, sha256, settings, profile_sha256, tables, **keys)
+        if store is not None:
+            store.replace_results(command, image, sha256, settings, profile_sha256, tables, **keys)
+        else:
+            record_results(db, command, image, sha256, settings, profile_sha256, tables, **keys)
         return True
     except (CouponError, sqlite3.Error) as exc:
         report_failure(f"{image}: not recorded in the database ({exc})")

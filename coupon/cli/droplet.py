@@ -248,6 +248,7 @@ def droplet(frames, profile_path, out_dir, px_per_mm, acidic_below, basic_above,
             row = {c: np.nan for c in FRAME_COLUMNS} | {"file": str(out.item), "drop_found": False,
                                                          "status": out.error, "note": "", "capture_time": ""}
             results[out.item] = {"row": row, "radial": []}
+    ledger.flush()
 
     rows = [results[p]["row"] for p in paths]
     try:
@@ -308,7 +309,9 @@ def _record_series(db_path, out_dir: Path, frame_table: pd.DataFrame, radial_row
     Frame numbers and times depend on the whole series, so every run records all frames (a rerun
     replaces their rows); frames that failed to load keep their earlier rows.
     """
-    from coupon.campaign.store import flat_row, resolve_db_path
+    import sqlite3
+
+    from coupon.campaign.store import flat_row, open_store, resolve_db_path
 
     db = resolve_db_path(out_dir, db_path)
     series_key = str(out_dir)
@@ -317,17 +320,22 @@ def _record_series(db_path, out_dir: Path, frame_table: pd.DataFrame, radial_row
     by_file: dict[str, list[dict]] = {}
     for rr in radial_rows:
         by_file.setdefault(str(rr["file"]), []).append(rr)
-    for r in frame_table.to_dict("records"):
-        sha = r.get("sha256")
-        if not isinstance(sha, str) or not sha:
-            continue
-        failed += not record_rows(db, COMMAND, r["file"], sha, settings_record, profile_sha,
-                                  {"droplet": [r], "radial_profile": by_file.get(str(r["file"]), [])},
-                                  series=series_key)
     keep = ("frames", "frames_ok", "frames_with_drop", "frames_failed", "time_source")
     row = flat_row({"series": series_key, **{k: summary[k] for k in keep}, **summary["events"]})
-    failed += not record_rows(db, COMMAND, f"{out_dir}#series", None, settings_record, profile_sha,
-                              {"droplet_summary": [row]}, series=series_key)
+    try:
+        with open_store(db) as store:  # one connection for the whole series
+            for r in frame_table.to_dict("records"):
+                sha = r.get("sha256")
+                if not isinstance(sha, str) or not sha:
+                    continue
+                failed += not record_rows(db, COMMAND, r["file"], sha, settings_record, profile_sha,
+                                          {"droplet": [r], "radial_profile": by_file.get(str(r["file"]), [])},
+                                          store=store, series=series_key)
+            failed += not record_rows(db, COMMAND, f"{out_dir}#series", None, settings_record, profile_sha,
+                                      {"droplet_summary": [row]}, store=store, series=series_key)
+    except (CouponError, sqlite3.Error) as exc:
+        report_failure(f"{db}: the series was not recorded in the database ({exc})")
+        failed += 1
     click.echo(f"database: {db}")
     return failed
 

@@ -339,6 +339,7 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
             report_failure(out.error, out.trace)
             rows = [_empty_row(str(out.item), out.error)]
         by_image[str(out.item)] = rows
+    ledger.flush()
     all_rows = [r for rows in by_image.values() for r in rows]
     write_csv(table_path, pd.DataFrame(all_rows, columns=PANEL_COLUMNS))
     click.echo(f"table: {table_path}\ndatabase: {db}")

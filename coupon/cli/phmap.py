@@ -101,6 +101,7 @@ def phmap(images, profile_path, out_dir, workers, force, max_megapixels):
             report_failure(out.error, out.trace)
             r = {c: np.nan for c in SUMMARY_COLUMNS} | {"image": str(out.item), "status": out.error}
         rows[str(out.item)] = r
+    ledger.flush()
     write_csv(summary_path, pd.DataFrame(list(rows.values()), columns=SUMMARY_COLUMNS))
     click.echo(f"summary: {summary_path}")
     if failed:

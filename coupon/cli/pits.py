@@ -299,6 +299,7 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
             report_failure(out.error, out.trace)
             rows[key] = {c: np.nan for c in SUMMARY_COLUMNS} | {"image": key, "status": out.error}
             new_pits[key] = []
+    ledger.flush()
     kept = old_pits[~old_pits["image"].astype(str).isin(list(new_pits))] if len(old_pits) else old_pits
     fresh = [r for v in new_pits.values() for r in v]
     table = pd.concat([t for t in (kept.reindex(columns=PITS_COLUMNS), pd.DataFrame(fresh, columns=PITS_COLUMNS))

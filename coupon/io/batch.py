@@ -18,6 +18,7 @@ import json
 import multiprocessing
 import os
 import sys
+import time
 import traceback
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
@@ -114,8 +115,13 @@ class ResumeLedger:
     the settings and all its recorded output files are unchanged.
     """
 
+    #: seconds between writes of the ledger during a batch (and always at :meth:`flush`)
+    FLUSH_EVERY_S = 5.0
+
     def __init__(self, out_dir: str | os.PathLike, command: str):
         self.path = Path(out_dir) / ".coupon" / f"{command}_done.json"
+        self._dirty = False
+        self._last_flush = time.monotonic()
         try:
             self.entries: dict[str, dict] = json.loads(self.path.read_text()) if self.path.exists() else {}
         except (json.JSONDecodeError, OSError):
@@ -136,4 +142,15 @@ class ResumeLedger:
         self.entries[self.key(path)] = {
             "sha256": sha256, "settings": settings, "outputs": [str(o) for o in outputs], "status": status,
         }
-        write_text(self.path, to_json_text(self.entries))
+        self._dirty = True
+        # rewriting the whole ledger after every item grows with the batch; every few seconds is
+        # enough for a resume after a crash (at worst those seconds' items are redone)
+        if time.monotonic() - self._last_flush >= self.FLUSH_EVERY_S:
+            self.flush()
+
+    def flush(self) -> None:
+        """Write the ledger if anything was recorded since the last write."""
+        if self._dirty:
+            write_text(self.path, to_json_text(self.entries))
+            self._dirty = False
+        self._last_flush = time.monotonic()
