@@ -19,9 +19,9 @@ from coupon.calibrate.scale import (
     scale_from_checkerboard, scale_from_points, scale_from_rectangle, scale_given,
 )
 from coupon.calibrate.target import TargetLayout, sample_white_patch
-from coupon.cli.common import fail, parse_numbers, parse_size
+from coupon.cli.common import fail, max_megapixels_option, parse_numbers, parse_size
 from coupon.errors import CouponError
-from coupon.io.images import DEFAULT_MAX_PIXELS, file_sha256, load_image
+from coupon.io.images import file_sha256, load_image
 
 
 @click.group()
@@ -33,12 +33,6 @@ def _profile_opt(f):
     return click.option("--profile", "profile_path", required=True,
                         type=click.Path(dir_okay=False, path_type=Path),
                         help="Profile JSON to create or update (other parts are kept).")(f)
-
-
-def _max_mp_opt(f):
-    return click.option("--max-megapixels", type=click.FloatRange(min=0, min_open=True),
-                        default=DEFAULT_MAX_PIXELS / 1e6, show_default=True,
-                        help="Refuse larger images (decompression-bomb guard).")(f)
 
 
 def _load(path: Path, max_megapixels: float):
@@ -56,7 +50,7 @@ def _load(path: Path, max_megapixels: float):
 @click.option("--rect", help="Four corners X1,Y1,...,X4,Y4 (px) of a rectangle of known size, any order.")
 @click.option("--rect-mm", help="Size of --rect in mm, WxH.")
 @_profile_opt
-@_max_mp_opt
+@max_megapixels_option
 def scale_cmd(image, checker, square_mm, px_per_mm, points, distance_mm, rect, rect_mm, profile_path, max_megapixels):
     """Pixels-to-millimetres scale, by one of four methods.
 
@@ -127,7 +121,7 @@ def scale_cmd(image, checker, square_mm, px_per_mm, points, distance_mm, rect, r
               help="White balance from the grey patch of the printed coupon target in IMAGE.")
 @click.option("--checker", default="9x7", show_default=True, help="Squares of the printed target (with --target).")
 @_profile_opt
-@_max_mp_opt
+@max_megapixels_option
 def colour_cmd(image, patches, kind, neutral_box, use_target, checker, profile_path, max_megapixels):
     """White balance and colour correction matrix.
 
@@ -190,7 +184,7 @@ def colour_cmd(image, patches, kind, neutral_box, use_target, checker, profile_p
               help=f"Colour distance (weighted CIELAB) beyond which a pixel is not indicator "
                    f"[default: max({DEFAULT_MAX_DISTANCE:g}, 3.5 x the drops' spread)].")
 @_profile_opt
-@_max_mp_opt
+@max_megapixels_option
 def indicator_cmd(image, ph_text, table, name, max_distance, profile_path, max_megapixels):
     """Indicator colour-to-pH model from buffer drops of known pH.
 

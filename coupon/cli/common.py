@@ -127,3 +127,24 @@ def record_rows(db, command: str, image, sha256: str | None, settings: dict, pro
     except (CouponError, sqlite3.Error) as exc:
         report_failure(f"{image}: not recorded in the database ({exc})")
         return False
+
+
+# -- options every batch command shares ---------------------------------------
+
+def workers_option(f):
+    return click.option("--workers", default=1, show_default=True, type=click.IntRange(min=1),
+                        help="Processes (one per core is the most that helps).")(f)
+
+
+def force_option(what: str = "images"):
+    def deco(f):
+        return click.option("--force", is_flag=True, help=f"Redo {what} already processed into --out.")(f)
+    return deco
+
+
+def max_megapixels_option(f):
+    from coupon.io.images import DEFAULT_MAX_PIXELS
+
+    return click.option("--max-megapixels", type=click.FloatRange(min=0, min_open=True),
+                        default=DEFAULT_MAX_PIXELS / 1e6, show_default=True,
+                        help="Refuse larger images (decompression-bomb guard).")(f)

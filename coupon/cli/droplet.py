@@ -18,12 +18,12 @@ from coupon.calibrate.indicator import IndicatorModel
 from coupon.calibrate.profile import load_profile
 from coupon.calibrate.scale import check_px_per_mm
 from coupon.calibrate.shipped import default_indicator
-from coupon.cli.common import EXIT_FAILED, db_option, fail, record_rows, report_failure
+from coupon.cli.common import EXIT_FAILED, db_option, fail, force_option, max_megapixels_option, record_rows, report_failure, workers_option
 from coupon.errors import AnalysisError, CouponError
 from coupon.io import frametimes as ft
 from coupon.io.atomic import write_csv, write_float_tiff, write_json
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
-from coupon.io.images import DEFAULT_MAX_PIXELS, expand_image_paths, load_image, try_sha256
+from coupon.io.images import expand_image_paths, load_image, try_sha256
 from coupon.segment.droplet import MEASURES, DropletSettings, analyse_frame, series_events
 
 #: droplet.csv columns, in order (the issue's columns are all here, with the same names).
@@ -150,11 +150,10 @@ def _parse_t0(ctx, param, value):
                    "times, a date-time (e.g. 2026-03-02T09:15:00). Default: the first frame.")
 @click.option("--frame-figures/--no-frame-figures", default=True, show_default=True,
               help="Write a pH picture per frame (the float TIFF is always written).")
-@click.option("--workers", default=1, show_default=True, type=click.IntRange(min=1), help="Processes.")
-@click.option("--force", is_flag=True, help="Redo frames already analysed into --out.")
+@workers_option
+@force_option("frames")
 @db_option
-@click.option("--max-megapixels", type=click.FloatRange(min=0, min_open=True), default=DEFAULT_MAX_PIXELS / 1e6,
-              show_default=True, help="Refuse larger images.")
+@max_megapixels_option
 def droplet(frames, profile_path, out_dir, px_per_mm, acidic_below, basic_above, rings, interval_min, times_csv,
             time_source, t0, frame_figures, workers, force, db_path, max_megapixels):
     """Droplet time-lapse: per frame the drop outline, its pH map, acidic / neutral / basic zones, rust

@@ -13,7 +13,7 @@ import pandas as pd
 
 from coupon import __version__
 from coupon.calibrate.profile import Profile, load_profile
-from coupon.cli.common import EXIT_FAILED, db_option, fail, parse_numbers, parse_size, record_rows, report_failure
+from coupon.cli.common import EXIT_FAILED, db_option, fail, force_option, max_megapixels_option, parse_numbers, parse_size, record_rows, report_failure, workers_option
 from coupon.errors import AnalysisError, CouponError
 from coupon.io.atomic import write_csv, write_json
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
@@ -259,11 +259,10 @@ Example:
               help="Smallest rust site counted.")
 @click.option("--grid-px-per-mm", default=10.0, show_default=True, type=click.FloatRange(min=1, max=40),
               help="Resolution of the rectified panel.")
-@click.option("--workers", default=1, show_default=True, type=click.IntRange(min=1), help="Processes.")
-@click.option("--force", is_flag=True, help="Re-rate images already rated into --out.")
+@workers_option
+@force_option("images")
 @db_option
-@click.option("--max-megapixels", type=click.FloatRange(min=0, min_open=True), default=DEFAULT_MAX_PIXELS / 1e6,
-              show_default=True, help="Refuse larger images.")
+@max_megapixels_option
 def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, manifest_path, profile_path,
            scribe_mode, scribe_width_mm, scribe_end_mm, min_speck_mm2, grid_px_per_mm, workers, force,
            db_path, max_megapixels):

@@ -12,12 +12,12 @@ import pandas as pd
 
 from coupon.calibrate.profile import Profile, load_profile
 from coupon.calibrate.shipped import default_indicator
-from coupon.cli.common import EXIT_FAILED, fail, report_failure
+from coupon.cli.common import EXIT_FAILED, fail, force_option, max_megapixels_option, report_failure, workers_option
 from coupon.errors import CouponError
 from coupon.io.atomic import write_csv, write_float_tiff
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
 from coupon.io.tables import read_previous
-from coupon.io.images import DEFAULT_MAX_PIXELS, expand_image_paths, load_image, try_sha256
+from coupon.io.images import expand_image_paths, load_image, try_sha256
 from coupon.report.figures import ph_figure
 
 SUMMARY_COLUMNS = ["image", "ph_median", "ph_p05", "ph_p95", "indicator_coverage_pct", "ph_tiff", "ph_png", "status"]
@@ -53,10 +53,9 @@ class PhMapJob:
               help="Profile with an indicator model (and optionally colour correction).")
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
               help="Output folder.")
-@click.option("--workers", default=1, show_default=True, type=click.IntRange(min=1), help="Processes.")
-@click.option("--force", is_flag=True, help="Redo images already mapped into --out.")
-@click.option("--max-megapixels", type=click.FloatRange(min=0, min_open=True), default=DEFAULT_MAX_PIXELS / 1e6,
-              show_default=True, help="Refuse larger images.")
+@workers_option
+@force_option("images")
+@max_megapixels_option
 def phmap(images, profile_path, out_dir, workers, force, max_megapixels):
     """pH per pixel for each image: DIR/<stem>_ph.tiff (float32, NaN off the indicator path),
     DIR/<stem>_ph.png (picture with colour bar) and DIR/phmap.csv; prints the median pH.

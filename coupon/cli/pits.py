@@ -12,13 +12,13 @@ import pandas as pd
 
 from coupon import __version__
 from coupon.calibrate.profile import load_profile
-from coupon.cli.common import EXIT_FAILED, db_option, fail, record_rows, report_failure
+from coupon.cli.common import EXIT_FAILED, db_option, fail, force_option, max_megapixels_option, record_rows, report_failure, workers_option
 from coupon.errors import AnalysisError, CouponError
 from coupon.io.atomic import write_csv, write_json
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
 from coupon.io.tables import read_previous
 from coupon.io.heightmap import HEIGHT_UNITS, load_height_map
-from coupon.io.images import DEFAULT_MAX_PIXELS, expand_image_paths, file_sha256, load_image, try_sha256
+from coupon.io.images import expand_image_paths, file_sha256, load_image, try_sha256
 from coupon.ratings import mass_loss as ml
 from coupon.ratings.pitting import MassLoss, summarise_pits
 from coupon.report.pit_figures import size_histogram, size_histogram_figure, write_overlay
@@ -175,11 +175,10 @@ def _fmt(x: float, spec: str) -> str:
 @click.option("--density-g-cm3", type=float, default=ml.CARBON_STEEL_DENSITY_G_CM3, show_default=True,
               callback=_positive("density (--density-g-cm3)", "g/cm3"),
               help="Metal density; the default is carbon steel (ASTM G1 appendix table, value from memory).")
-@click.option("--workers", default=1, show_default=True, type=click.IntRange(min=1), help="Processes.")
-@click.option("--force", is_flag=True, help="Redo images already analysed into --out.")
+@workers_option
+@force_option("images")
 @db_option
-@click.option("--max-megapixels", type=click.FloatRange(min=0, min_open=True), default=DEFAULT_MAX_PIXELS / 1e6,
-              show_default=True, help="Refuse larger images.")
+@max_megapixels_option
 def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_look, min_contrast, whole_frame,
          height_map, height_unit, mass_loss_mg, exposed_area_cm2, hours, density_g_cm3, workers, force,
          db_path, max_megapixels, rectify):
