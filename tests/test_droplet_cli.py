@@ -190,3 +190,22 @@ def test_threshold_options_and_usage_errors(tmp_path, runner):
     assert res.exit_code == 2 and "duration with a unit" in res.output
     res = invoke(runner, ["droplet", "--help"])
     assert res.exit_code == 0 and "coupon droplet frames/" in res.output
+
+
+def test_background_writes_finish_and_report_failures(tmp_path):
+    # pictures written on the writer thread exist when the block ends; a failed write is reported
+    import numpy as np
+
+    from coupon.io.atomic import BackgroundWrites, defer, write_image
+
+    pic = np.zeros((8, 8, 3), np.uint8)
+    with BackgroundWrites() as w:
+        p = defer(tmp_path / "a.png", write_image, tmp_path / "a.png", pic)
+        defer(tmp_path / "no" / "b.png", _fail_write)
+    assert p.exists() and len(w.errors) == 1 and "b.png" in w.errors[0]
+    q = defer(tmp_path / "c.png", write_image, tmp_path / "c.png", pic)  # no writer active: written now
+    assert q.exists()
+
+
+def _fail_write():
+    raise OSError("disk full")

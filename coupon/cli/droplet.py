@@ -21,7 +21,7 @@ from coupon.calibrate.shipped import default_indicator
 from coupon.cli.common import EXIT_FAILED, db_option, fail, force_option, max_megapixels_option, record_rows, report_failure, workers_option
 from coupon.errors import AnalysisError, CouponError
 from coupon.io import frametimes as ft
-from coupon.io.atomic import write_csv, write_float_tiff, write_json
+from coupon.io.atomic import BackgroundWrites, write_csv, write_float_tiff, write_json
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
 from coupon.io.images import expand_image_paths, load_image, try_sha256
 from coupon.segment.droplet import MEASURES, DropletSettings, analyse_frame, series_events
@@ -233,20 +233,25 @@ def droplet(frames, profile_path, out_dir, px_per_mm, acidic_below, basic_above,
     if len(todo) < len(paths):
         click.echo(f"{len(paths) - len(todo)} frame(s) already analysed (use --force to redo)")
     failed = 0
-    for out in run_batch(todo, job, workers=workers, label="droplet frames"):
-        if out.ok:
-            r = out.result
-            outputs = [o for o in (r["row"]["ph_tiff"], r["row"]["ph_png"]) if o]
-            ledger.record(out.item, r["row"]["sha256"], shash, outputs)
-            results[out.item] = r
-            if not r["row"]["drop_found"]:
-                click.echo(f"{out.item}: {r['row']['note']}")
-        else:
-            failed += 1
-            report_failure(out.error, out.trace)
-            row = {c: np.nan for c in FRAME_COLUMNS} | {"file": str(out.item), "drop_found": False,
-                                                         "status": out.error, "note": "", "capture_time": ""}
-            results[out.item] = {"row": row, "radial": []}
+    # in-process, pictures are encoded on the second core while the next frame is analysed
+    with BackgroundWrites() as writes:
+        for out in run_batch(todo, job, workers=workers, label="droplet frames"):
+            if out.ok:
+                r = out.result
+                outputs = [o for o in (r["row"]["ph_tiff"], r["row"]["ph_png"]) if o]
+                ledger.record(out.item, r["row"]["sha256"], shash, outputs)
+                results[out.item] = r
+                if not r["row"]["drop_found"]:
+                    click.echo(f"{out.item}: {r['row']['note']}")
+            else:
+                failed += 1
+                report_failure(out.error, out.trace)
+                row = {c: np.nan for c in FRAME_COLUMNS} | {"file": str(out.item), "drop_found": False,
+                                                             "status": out.error, "note": "", "capture_time": ""}
+                results[out.item] = {"row": row, "radial": []}
+    for message in writes.errors:
+        failed += 1
+        report_failure(message)
     ledger.flush()
 
     rows = [results[p]["row"] for p in paths]

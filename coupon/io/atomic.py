@@ -121,3 +121,47 @@ def save_figure(fig, dest: str | os.PathLike, **kwargs) -> Path:
         fig.savefig(tmp, **kwargs)
     plt.close(fig)
     return Path(dest)
+
+
+class BackgroundWrites:
+    """Run output writes on a second thread while the next input is analysed.
+
+    Encoders (OpenCV, zlib) release the GIL, so a picture is written on the
+    second core while the first analyses the next frame.  Used as a context
+    manager around an in-process batch; :func:`defer` runs a write at once
+    when no writer is active (in worker processes, for instance).
+    """
+
+    _active: "BackgroundWrites | None" = None
+
+    def __init__(self):
+        from concurrent.futures import ThreadPoolExecutor
+
+        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="coupon-writes")
+        self._pending: list = []
+        self.errors: list[str] = []
+
+    def __enter__(self) -> "BackgroundWrites":
+        BackgroundWrites._active = self
+        return self
+
+    def __exit__(self, *exc) -> None:
+        BackgroundWrites._active = None
+        for dest, fut in self._pending:
+            err = fut.exception()
+            if err is not None:
+                self.errors.append(f"{dest}: could not be written ({err})")
+        self._pool.shutdown(wait=True)
+
+    def submit(self, dest, fn, *args) -> None:
+        self._pending.append((dest, self._pool.submit(fn, *args)))
+
+
+def defer(dest, fn, *args):
+    """Write ``dest`` with ``fn(*args)`` on the active :class:`BackgroundWrites`, or now; returns ``dest``."""
+    writer = BackgroundWrites._active
+    if writer is None:
+        fn(*args)
+    else:
+        writer.submit(dest, fn, *args)
+    return Path(dest)

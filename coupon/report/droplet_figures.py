@@ -21,7 +21,7 @@ import matplotlib
 import matplotlib.colors as mcolors
 import numpy as np
 
-from coupon.io.atomic import atomic_path, save_figure
+from coupon.io.atomic import atomic_path, defer, save_figure
 from coupon.report.figures import NO_DATA_GREY, PALETTE, PH_CMAP, ph_colormap, plt
 
 ZONE_COLOURS = {"acidic": PALETTE[3], "neutral": PALETTE[2], "basic": PALETTE[0], "rust": PALETTE[1],
@@ -112,9 +112,10 @@ def frame_figure(ph_map: np.ndarray, drop: np.ndarray, rust: np.ndarray, dest: s
     matplotlib's viridis as a 256-entry table, so it matches the series
     figures, which matplotlib draws.
     """
-    return write_png_fast(dest, frame_picture(ph_map, drop, rust, title=title, px_per_mm=px_per_mm,
-                                              acidic_below=acidic_below, basic_above=basic_above,
-                                              ph_range=ph_range))
+    picture = frame_picture(ph_map, drop, rust, title=title, px_per_mm=px_per_mm, acidic_below=acidic_below,
+                            basic_above=basic_above, ph_range=ph_range)
+    # encoding runs on the second core when the command has a background writer active
+    return defer(dest, write_png_fast, dest, picture)
 
 
 def write_png_fast(dest: str | Path, rgb_u8: np.ndarray) -> Path:
