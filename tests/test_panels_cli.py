@@ -125,3 +125,24 @@ def test_layout_and_manifest_that_cannot_be_read(runner, tray_file, tmp_path):
     man.write_text(f"image,exposure_h\n{path.name},two hundred\n")
     res = invoke(runner, ["panels", path, "--out", tmp_path / "out", "--manifest", man])
     assert res.exit_code == 2 and "line 2, column exposure_h is not a number" in res.output
+
+
+def test_qr_precheck_counts_finder_patterns():
+    import cv2
+
+    from coupon.segment.panels.detect import find_panels, qr_finder_count
+
+    # reference: a code drawn by OpenCV's QRCodeEncoder has three finder patterns (ISO/IEC 18004 layout)
+    code = cv2.resize(cv2.QRCodeEncoder.create().encode("BW-2-C"), None, fx=3, fy=3,
+                      interpolation=cv2.INTER_NEAREST)
+    page = np.full((400, 300), 170, np.uint8)
+    page[40:40 + code.shape[0], 30:30 + code.shape[1]] = code
+    assert qr_finder_count(page) == 3
+    # a rusted, scribed panel with camera noise and JPEG but no code: the decoder is skipped
+    img, _ = tray_scene([PanelSpec("dark", ("general", "spots"), scribe="x", creep_mm=2.0)], seed=5,
+                        settings=TraySettings(image_wh=(600, 800), cols=1))
+    c = find_panels(img)[0].corners_xy
+    x0, y0 = np.floor(c.min(axis=0)).astype(int)
+    x1, y1 = np.ceil(c.max(axis=0)).astype(int)
+    grey = cv2.cvtColor(np.ascontiguousarray(img[y0:y1, x0:x1]), cv2.COLOR_RGB2GRAY)
+    assert qr_finder_count(np.clip(np.rint(grey * 255), 0, 255).astype(np.uint8)) == 0

@@ -5,7 +5,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from coupon.ratings.panel_ratings import distribution_letter, rust_grade, written_grade
+from coupon.ratings.panel_ratings import (MIX_MIN_SHARE, PINPOINT_MAX_MM2, SPOT_MAX_CELL_SHARE, SPOT_MAX_CLUSTERS,
+                                          SPOT_MIN_SHARE, distribution_letter, pinpoint_share, rust_grade,
+                                          written_grade)
 from coupon.ratings.scales import rate
 
 # ASTM D610-08 Table 1 (verified): grade -> upper bound of percent rusted (lower bound exclusive)
@@ -94,13 +96,96 @@ def test_letter_general_and_hybrid():
     areas, cent = _grid_sites(40, 2.0, 10.0, (8, 8))
     assert distribution_letter(areas, cent, RATED, 10.0, "5") == "G"
     # pinpoint specks carrying a third of the rust area beside the spots: a mix (H)
-    pa, pc = _grid_sites(100, 0.2, 6.0, (9, 12))
+    pa, pc = _grid_sites(100, 0.4, 6.0, (9, 12))
     assert distribution_letter(np.r_[areas, pa], np.r_[cent, pc], RATED, 10.0, "5") == "H"
 
 
 def test_no_letter_for_grade_10_or_no_sites():
     assert distribution_letter(np.array([0.05]), np.array([[5.0, 5.0]]), RATED, 10.0, "10") == ""
     assert distribution_letter(np.zeros(0), np.zeros((0, 2)), RATED, 10.0, "9") == ""
+    assert distribution_letter(np.array([5.0]), np.array([[30.0, 60.0]]), RATED, 10.0, "0") == ""
+
+
+# The letter rule is coupon's own (ASTM D610 defines the letters in words and pictures only):
+# pinpoint site <= PINPOINT_MAX_MM2; H when pinpoint and larger sites each carry >= MIX_MIN_SHARE
+# of the rusted area; P when the larger sites carry less; S/G from the larger sites otherwise.
+
+
+def _pin_and_spread(pin_mm2, big_mm2, pin_site_mm2=0.1):
+    """Pinpoint specks spread on a 6 mm grid plus larger spots spread on a 12 mm grid (areas in mm2)."""
+    n_pin = int(round(pin_mm2 / pin_site_mm2))
+    pa, pc = _grid_sites(n_pin, pin_site_mm2, 6.0, (8, 9)) if n_pin else (np.zeros(0), np.zeros((0, 2)))
+    n_big = 20
+    ba, bc = _grid_sites(n_big, big_mm2 / n_big, 12.0, (11, 13)) if big_mm2 else (np.zeros(0), np.zeros((0, 2)))
+    return np.r_[pa, ba], np.r_[pc, bc]
+
+
+@pytest.mark.parametrize("pin_pct, letter", [(69.0, "H"), (70.0, "H"), (71.0, "P"), (100.0, "P"),
+                                             (31.0, "H"), (30.0, "H"), (29.0, "G"), (0.0, "G")])
+def test_mix_share_threshold(pin_pct, letter):
+    # larger spots spread over the panel (G) mixed with pinpoint specks: H exactly when each part
+    # carries at least 30 % of the rusted area (the 30 % boundary itself reads H)
+    assert MIX_MIN_SHARE == 0.30
+    areas, cent = _pin_and_spread(pin_pct, 100.0 - pin_pct)
+    assert pinpoint_share(areas) == pytest.approx(pin_pct / 100, abs=1e-9)
+    assert distribution_letter(areas, cent, RATED, 10.0, "5") == letter
+
+
+def test_pinpoint_size_limit():
+    # sites exactly at the limit are pinpoint; just above it they are larger sites
+    assert PINPOINT_MAX_MM2 == 0.8
+    areas, cent = _grid_sites(60, PINPOINT_MAX_MM2, 9.0, (8, 8))
+    assert pinpoint_share(areas) == 1.0
+    assert distribution_letter(areas, cent, RATED, 10.0, "5") == "P"
+    areas_up = np.full(60, PINPOINT_MAX_MM2 * 1.01)
+    assert pinpoint_share(areas_up) == 0.0
+    assert distribution_letter(areas_up, cent, RATED, 10.0, "5") == "G"
+
+
+def test_merged_specks_and_a_few_false_sites_stay_pinpoint():
+    # the case that read H before: specks, many merged into sites of 0.3 to 0.8 mm2 (JPEG spreads them,
+    # close specks join), plus a handful of tiny false sites; all pinpoint by area
+    rng = np.random.default_rng(3)
+    areas = np.r_[rng.uniform(0.05, 0.3, 80), rng.uniform(0.3, 0.8, 60), np.full(8, 0.02)]
+    cent = np.column_stack([rng.uniform(6, 69, areas.size), rng.uniform(6, 144, areas.size)])
+    assert distribution_letter(areas, cent, RATED, 10.0, "6") == "P"
+    # one larger spot of 1.5 mm2 beside them carries about 3 % of the area: still P
+    assert distribution_letter(np.r_[areas, 1.5], np.r_[cent, [[30.0, 70.0]]], RATED, 10.0, "6") == "P"
+
+
+def test_spot_cluster_share_threshold():
+    # three tight clusters of spots carry the share s of the larger rust; the rest is spread
+    # thinly over the panel (one 1 mm2 site per 12 mm cell)
+    assert (SPOT_MAX_CLUSTERS, SPOT_MIN_SHARE) == (3, 0.80)
+    spread_a, spread_c = _grid_sites(20, 1.0, 12.0, (11, 13))  # 20 mm2 spread (y 13 to 49 mm)
+    clusters = [(30.0, 90.0), (55.0, 110.0), (25.0, 135.0)]  # more than CLUSTER_MM from every spread site
+
+    def letter(share):
+        each = 20.0 * share / (1 - share) / 3  # cluster area so that the clusters carry `share`
+        a = np.r_[spread_a, np.full(3, each)]
+        c = np.r_[spread_c, np.asarray(clusters)]
+        return distribution_letter(a, c, RATED, 10.0, "5")
+
+    # rust touches 23 of the 113 cells of 10 mm (<= 25 %), so the cluster share decides
+    assert letter(0.81) == "S"
+    assert letter(0.79) == "G"
+
+
+def test_spot_needs_few_cells():
+    # three large clusters carry 90 % but rust touches more than 25 % of the 10 mm cells: G
+    assert SPOT_MAX_CELL_SHARE == 0.25
+    spread_a, spread_c = _grid_sites(36, 1.0, 10.5, (6, 6))  # 36 of the 113 cells touched (y 6 to 59 mm)
+    a = np.r_[spread_a, np.full(3, 108.0)]
+    c = np.r_[spread_c, [[30.0, 90.0], [55.0, 110.0], [25.0, 135.0]]]
+    assert distribution_letter(a, c, RATED, 10.0, "4") == "G"
+    assert distribution_letter(a[36:], c[36:], RATED, 10.0, "4") == "S"
+
+
+def test_spot_and_general_read_general_not_hybrid():
+    # a mix of spot clusters and spread spots is G (H is kept for pinpoint mixed with larger rust)
+    a1, c1 = _grid_sites(5, 3.0, 2.0, (20, 30))
+    a2, c2 = _grid_sites(40, 1.5, 10.0, (8, 8))
+    assert distribution_letter(np.r_[a1, a2], np.r_[c1, c2], RATED, 10.0, "5") == "G"
 
 
 def test_masks_and_edge_band_reduce_rated_area():

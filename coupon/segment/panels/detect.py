@@ -352,11 +352,51 @@ def rectify_panel(rgb: np.ndarray, corners_xy: np.ndarray, size_mm: tuple[float,
     return RectifiedPanel(lin.astype(np.float32, copy=False), float(px_per_mm), (w_mm, h_mm), cal)
 
 
+#: Finder-pattern pre-check of the QR search: adaptive-threshold window (px) and offset (grey levels of
+#: 255).  The offset lies well below the black-white contrast of a printed label (about 200 levels)
+#: and well above camera noise and coating texture, whose speckle would otherwise give thousands
+#: of contours.
+QR_PRECHECK_BLOCK_PX = 31
+QR_PRECHECK_OFFSET = 30
+#: The decoder runs on a crop only when at least this many finder-pattern candidates are found
+#: (a code has three; two leaves room for one lost to glare or blur, a false alarm costs only time).
+QR_PRECHECK_MIN_FINDERS = 2
+
+
+def qr_finder_count(u8: np.ndarray) -> int:
+    """Number of QR finder-pattern candidates in a grey uint8 image.
+
+    A finder pattern is a dark square ring around a light ring around a dark
+    core (1:1:3:1:1 modules).  After a local (adaptive) threshold it is a dark
+    contour whose hole holds a dark contour: a grandchild in the contour tree.
+    Much cheaper than the decoder's own search, so a crop without a code costs
+    little.  The outer contour must be at least 40 px2 (7 x 7 modules of about
+    one pixel) and 2 to 20 times the area of the core (49 / 9 for a square view).
+    """
+    dark = cv2.adaptiveThreshold(u8, 1, cv2.ADAPTIVE_THRESH_MEAN_C, cv2.THRESH_BINARY_INV,
+                                 QR_PRECHECK_BLOCK_PX, QR_PRECHECK_OFFSET)
+    contours, hier = cv2.findContours(dark, cv2.RETR_TREE, cv2.CHAIN_APPROX_SIMPLE)
+    if hier is None:
+        return 0
+    child = hier[0][:, 2]
+    outer = np.flatnonzero(child >= 0)
+    outer = outer[child[child[outer]] >= 0]
+    n = 0
+    for k in outer:  # few candidates: noise speckle has no grandchildren
+        a_outer = cv2.contourArea(contours[k])
+        a_core = cv2.contourArea(contours[child[child[k]]])
+        if a_outer >= 40 and a_core > 0 and 2.0 <= a_outer / a_core <= 20.0:
+            n += 1
+    return n
+
+
 def read_qr_codes(rgb: np.ndarray, quads: list[PanelQuad], grow: float = 0.25) -> dict[int, tuple[str, np.ndarray]]:
     """Decode QR codes on or beside each panel (OpenCV's QRCodeDetector).
 
     Each panel's region, grown by ``grow`` of its size to take in a holder
     label, is searched; returns panel index -> (text, QR corners xy in the photo).
+    The decoder (the costly part) runs only on crops where :func:`qr_finder_count`
+    finds at least ``QR_PRECHECK_MIN_FINDERS`` finder patterns.
     """
     det = cv2.QRCodeDetector()
     out: dict[int, tuple[str, np.ndarray]] = {}
@@ -369,6 +409,8 @@ def read_qr_codes(rgb: np.ndarray, quads: list[PanelQuad], grow: float = 0.25) -
         x1, y1 = np.minimum([cols, rows], np.ceil(c.max(axis=0) + grow * span)).astype(int)
         grey = cv2.cvtColor(np.ascontiguousarray(rgb[y0:y1, x0:x1]), cv2.COLOR_RGB2GRAY)
         u8 = np.clip(np.rint(grey * 255.0), 0, 255).astype(np.uint8)
+        if qr_finder_count(u8) < QR_PRECHECK_MIN_FINDERS:
+            continue  # no code here: skip the decoder's search (about 0.05 s per panel crop)
         # QR modules can be only a few pixels in a tray photo: upsample small crops
         up = 2.0 if max(u8.shape) < 1500 else 1.0
         if up > 1:
