@@ -60,7 +60,12 @@ def _pool_context():
     """Worker processes start from a clean server (forkserver) or fresh (spawn), never by forking
     this process: a fork would inherit OpenCV's and BLAS's thread pools mid-use and can deadlock."""
     methods = multiprocessing.get_all_start_methods()
-    return multiprocessing.get_context("forkserver" if "forkserver" in methods else "spawn")
+    if "forkserver" not in methods:
+        return multiprocessing.get_context("spawn")
+    ctx = multiprocessing.get_context("forkserver")
+    # the server imports the heavy libraries once; each worker is then a cheap fork of it
+    ctx.set_forkserver_preload(["numpy", "cv2", "scipy.ndimage", "pandas", "skimage.measure", "coupon.io.images"])
+    return ctx
 
 
 def _init_worker() -> None:
