@@ -29,6 +29,7 @@ from scipy import ndimage as ndi
 from coupon.calibrate import colourspace as cs
 from coupon.calibrate.scale import ScaleCalibration, quad_area_px2, scale_from_rectangle, warp_to_mm_grid
 from coupon.errors import AnalysisError
+from coupon.segment.panels.rust import lstsq_quadratic
 
 _LUT_LEVELS = 4096
 _DECODE_LUT = cs.srgb_to_linear(np.linspace(0.0, 1.0, _LUT_LEVELS)).astype(np.float32)
@@ -36,8 +37,11 @@ _DECODE_LUT = cs.srgb_to_linear(np.linspace(0.0, 1.0, _LUT_LEVELS)).astype(np.fl
 
 def linearize(rgb: np.ndarray) -> np.ndarray:
     """sRGB-encoded [0, 1] to linear light [0, 1] through a 4096-level table (float32)."""
-    idx = np.clip(np.rint(rgb * np.float32(_LUT_LEVELS - 1)), 0, _LUT_LEVELS - 1).astype(np.int16)
-    return _DECODE_LUT[idx]
+    # one float32 temporary, rounded and clipped in place, then a uint16 index into the table
+    t = np.multiply(rgb, np.float32(_LUT_LEVELS - 1), dtype=np.float32)
+    np.rint(t, out=t)
+    np.clip(t, 0, _LUT_LEVELS - 1, out=t)
+    return _DECODE_LUT[t.astype(np.uint16)]
 
 
 @dataclass(frozen=True)
@@ -104,29 +108,42 @@ def _poly_design(rows: int, cols: int, rr: np.ndarray, cc: np.ndarray) -> np.nda
 
 
 def _tray_distance(lab: np.ndarray, iterations: int = 3) -> np.ndarray:
-    """Colour distance of every pixel from a smooth (quadratic) model of the tray's colour."""
+    """Colour distance of every pixel from a smooth (quadratic) model of the tray's colour.
+
+    The fit uses at most 40 000 sampled background pixels (float64, small); the model is
+    evaluated separably in float32 (a row part plus column terms broadcast), so no coordinate
+    grids or full-size float64 design matrices are built.
+    """
     rows, cols = lab.shape[:2]
-    rr, cc = np.mgrid[0:rows, 0:cols]
-    design = _poly_design(rows, cols, rr.ravel().astype(np.float64), cc.ravel().astype(np.float64))
-    flat = lab.reshape(-1, 3).astype(np.float64)
-    band = max(2, int(0.03 * min(rows, cols)))
-    bg = np.zeros((rows, cols), bool)
-    bg[:band], bg[-band:], bg[:, :band], bg[:, -band:] = True, True, True, True
     weight = np.array([0.5, 1.0, 1.0])  # lightness counts half: shading changes it most
+    labw = np.ascontiguousarray(lab, dtype=np.float32) * weight.astype(np.float32)
+    flat = labw.reshape(-1, 3)
+    band = max(2, int(0.03 * min(rows, cols)))
+    bg = np.zeros((rows, cols), np.uint8)
+    bg[:band], bg[-band:], bg[:, :band], bg[:, -band:] = 1, 1, 1, 1
+    # scipy's default 3x3 cross iterated n times: the same diamond as cv2.dilate with a cross
+    cross = cv2.getStructuringElement(cv2.MORPH_CROSS, (3, 3))
+    grow = max(2, int(0.01 * min(rows, cols)))
+    yv = (np.arange(rows, dtype=np.float64) / rows - 0.5)[:, None]
+    xv = (np.arange(cols, dtype=np.float64) / cols - 0.5).astype(np.float32)[None, :, None]
     dist = None
     for _ in range(iterations):
-        sel = bg.ravel()
-        step = max(1, int(sel.sum() // 40000))
-        idx = np.flatnonzero(sel)[::step]
-        coef, *_ = np.linalg.lstsq(design[idx], flat[idx], rcond=None)
-        model = design @ coef
-        dist = np.sqrt((((flat - model) * weight) ** 2).sum(axis=1)).reshape(rows, cols)
+        idx = np.flatnonzero(bg)
+        idx = idx[::max(1, int(idx.size // 40000))]
+        rr, cc = np.divmod(idx, cols)
+        design = _poly_design(rows, cols, rr.astype(np.float64), cc.astype(np.float64))
+        coef = lstsq_quadratic(design, flat[idx])  # (6, 3), weighted channels
+        row_part = (coef[0] + yv * coef[2] + yv * yv * coef[5]).astype(np.float32)[:, None, :]
+        slope = (coef[1] + yv * coef[4]).astype(np.float32)[:, None, :]
+        model = row_part + xv * (slope + xv * coef[3].astype(np.float32))
+        diff = cv2.subtract(labw, model)
+        dist = np.sqrt(np.einsum("ijk,ijk->ij", diff, diff))
         thr = max(10.0, _otsu(dist))
-        fg = dist > thr
-        bg = ~ndi.binary_dilation(fg, iterations=max(2, int(0.01 * min(rows, cols))))
-        if bg.sum() < 100:
+        fg = (dist > np.float32(thr)).astype(np.uint8)
+        bg = 1 - cv2.dilate(fg, cross, iterations=grow)
+        if np.count_nonzero(bg) < 100:
             break
-    return dist.astype(np.float32)
+    return dist.astype(np.float32, copy=False)
 
 
 def _otsu(values: np.ndarray) -> float:

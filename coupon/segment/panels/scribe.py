@@ -118,9 +118,15 @@ class ScribeResult:
 
 def defect_map(model: ColourModel) -> tuple[np.ndarray, np.ndarray]:
     """(defect, metal): rust fraction or bare-steel evidence in [0, 1], and the bare-steel part."""
-    rust = np.where(model.rust_wins, np.clip(model.fraction, 0, 1), 0)
-    metal = np.where(model.rust_wins, 0, np.clip((np.abs(model.neutral_dev) - 0.25) / 0.25, 0, 1))
-    return np.maximum(rust, metal).astype(np.float32), metal.astype(np.float32)
+    # float32 in place: bare steel is a strong neutral deviation where no rust colour won
+    metal = np.abs(model.neutral_dev, dtype=np.float32)
+    metal -= np.float32(0.25)
+    metal *= np.float32(4.0)  # / 0.25
+    np.clip(metal, 0, 1, out=metal)
+    metal[model.rust_wins] = 0
+    # both parts are >= 0 and at most one is non-zero per pixel, so the maximum is a selection
+    defect = np.where(model.rust_wins, np.clip(model.fraction, 0, 1), metal).astype(np.float32, copy=False)
+    return defect, metal
 
 
 def _projection(xy: np.ndarray, w: np.ndarray, theta: float, bin_mm: float):
