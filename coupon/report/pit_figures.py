@@ -32,7 +32,12 @@ AREA_BINS_MM2 = np.array([0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1, 2, 5, 10, 2
 
 
 def size_class(area_mm2: np.ndarray) -> list[str]:
-    return [ASTM_G46_SIZE.rate(a) or "B-1" for a in np.asarray(area_mm2, float)]
+    """G46 size chart of each pit (``ASTM_G46_SIZE.rate``, vectorised; "B-1" where it gives none)."""
+    a = np.asarray(area_mm2, float)
+    names = [name for name, _ in ASTM_G46_SIZE.charts]
+    k = np.searchsorted(ASTM_G46_SIZE.boundaries(), a, side="left")  # the same rule as ChartScale.rate
+    valid = np.isfinite(a) & (a > 0)
+    return [names[i] if ok else "B-1" for i, ok in zip(k.tolist(), valid.tolist())]
 
 
 def size_histogram(area_mm2: np.ndarray) -> dict:
@@ -70,13 +75,13 @@ def overlay_image(rgb: np.ndarray, labels: np.ndarray, analysed: np.ndarray, pit
     h, w = labels.shape
     k, f = _overlay_factor((h, w), max_side_px)
     if k > 1:
-        # to 8 bits first: the area reduction of uint8 is several times faster than of float32
-        small = cv2.resize(cv2.convertScaleAbs(np.asarray(rgb, np.float32), alpha=255.0), None, fx=1.0 / k,
-                           fy=1.0 / k, interpolation=cv2.INTER_AREA)
-        size = (small.shape[1], small.shape[0])
-        # nearest-pixel sampling, aligned with the area reduction's blocks (their centre pixel)
-        lab = np.ascontiguousarray(labels[k // 2::k, k // 2::k][:size[1], :size[0]])
-        an = np.ascontiguousarray(analysed[k // 2::k, k // 2::k][:size[1], :size[0]])
+        # nearest-pixel sampling (the centre pixel of each k x k block) of picture, labels and region alike:
+        # outlines stay exactly on the picture's pixels, and only one pixel in k*k is read and converted to
+        # 8 bits (an area reduction of the whole frame took 60 ms of the job at 24 MP, this takes about 10)
+        small = cv2.convertScaleAbs(np.ascontiguousarray(np.asarray(rgb)[k // 2::k, k // 2::k]), alpha=255.0)
+        lab = np.ascontiguousarray(labels[k // 2::k, k // 2::k])
+        an = np.ascontiguousarray(analysed[k // 2::k, k // 2::k])
+        size = (small.shape[1], small.shape[0])  # the blocks that have a centre pixel
         scale_xy = 1.0 / k
     else:
         size = (max(1, int(round(w * f))), max(1, int(round(h * f))))
@@ -85,12 +90,11 @@ def overlay_image(rgb: np.ndarray, labels: np.ndarray, analysed: np.ndarray, pit
         an = (cv2.resize(analysed.view(np.uint8), size, interpolation=cv2.INTER_NEAREST) if f != 1
               else analysed.view(np.uint8)).astype(bool)
         scale_xy = f
-    if lab.shape != (size[1], size[0]):  # a reduction that rounded up: pad the last row/column
-        lab = np.pad(lab, ((0, size[1] - lab.shape[0]), (0, size[0] - lab.shape[1])), mode="edge")
-        an = np.pad(an, ((0, size[1] - an.shape[0]), (0, size[0] - an.shape[1])), mode="edge")
     out = small if small.dtype == np.uint8 else cv2.convertScaleAbs(np.asarray(small, np.float32), alpha=255.0)
-    dim = cv2.convertScaleAbs(out, alpha=DIMMED)
-    np.copyto(out, dim, where=~an[..., None])
+    if out is rgb:
+        out = out.copy()  # never draw on the caller's picture
+    # dim outside the analysed region (OpenCV's masked copy: a numpy copyto with a broadcast mask is 5 x slower)
+    cv2.copyTo(cv2.convertScaleAbs(out, alpha=DIMMED), (~an).view(np.uint8), out)
     # analysed border: dashed white
     contours, _ = cv2.findContours(an.view(np.uint8), cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
     dashes = [c[k0:k0 + 8] for c in contours for k0 in range(0, len(c), 16) if len(c[k0:k0 + 8]) > 1]

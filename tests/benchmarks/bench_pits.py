@@ -50,7 +50,9 @@ def main() -> None:
     ap.add_argument("--repeat", type=int, default=3, help="runs of each step; the fastest counts (others share the machine)")
     args = ap.parse_args()
     from coupon.cli.pits import PitJob, pit_rows_for_image
-    from coupon.io.images import load_image
+    from coupon.io.heightmap import load_height_map
+    from coupon.io.images import file_sha256, load_image
+    from coupon.report.pit_figures import size_histogram_figure, write_overlay
     from coupon.segment.pits import PitSettings, analyse_pits
 
     tmp = Path(tempfile.mkdtemp(prefix="bench_pits_"))
@@ -66,11 +68,24 @@ def main() -> None:
     job = PitJob(settings, tmp / "out", 250_000_000, height_map=str(tmp / "scan24_height.tiff"), height_unit="um")
     (tmp / "out").mkdir()
     t_decode = t_core = t_full = float("inf")
+    parts: dict[str, float] = {}
     rows = None
+    hpath = tmp / "scan24_height.tiff"
     for _ in range(args.repeat):  # interleaved: a burst of load from others hits every step alike
         td, img = best_of(lambda: load_image(path), 1)
         tc, _ = best_of(lambda: analyse_pits(img.rgb, settings), 1)
-        del img
+        # the full job's other steps, one by one (where its time goes)
+        step = {}
+        step["height map read (load_height_map)"], hm = best_of(lambda: load_height_map(hpath, "um", img.shape_rc), 1)
+        step["analysis with the height map"], res = best_of(lambda: analyse_pits(img.rgb, settings, hm), 1)
+        step["overlay (write_overlay)"], _ = best_of(lambda: write_overlay(tmp / "out" / "b_pits.png", img.rgb, res.labels,
+                                                                            res.analysed, res.pits, 40.0), 1)
+        step["histogram (size_histogram_figure)"], _ = best_of(lambda: size_histogram_figure(res.pits,
+                                                                                             tmp / "out" / "b.png"), 1)
+        step["height map SHA-256 (file_sha256, in the CLI)"], _ = best_of(lambda: file_sha256(hpath), 1)
+        for k, v in step.items():
+            parts[k] = min(parts.get(k, float("inf")), v)
+        del img, hm, res
         tf, rows = best_of(lambda: pit_rows_for_image(path, job), 1)
         t_decode, t_core, t_full = min(t_decode, td), min(t_core, tc), min(t_full, tf)
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
@@ -80,6 +95,8 @@ def main() -> None:
     print(f"core analysis (analyse_pits, no height map) {t_core:6.3f} s   ratio {t_core / t_decode:5.2f} x decode")
     print(f"full job (decode, height map, analysis, overlay, histogram, JSON) {t_full:6.3f} s   "
           f"ratio {full_ratio:5.2f} x decode without its decode ({t_full / t_decode:5.2f} x with it)")
+    for k, v in parts.items():
+        print(f"  step of the full job: {k:46s} {v:6.3f} s  ({v / t_decode:4.2f} x decode)")
     print(f"pits found {s['pit_count']} (truth {truth['counted']['count']}), deepest {s['max_depth_mm']:.3f} mm "
           f"(truth {truth['counted']['max_depth_mm']:.3f}); overlay {Path(s['overlay']).name}")
     print(f"peak memory (max RSS of this process) {peak:.0f} MiB (at start {rss0:.0f} MiB; the decoded image alone "

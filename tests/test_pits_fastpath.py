@@ -1,0 +1,150 @@
+"""Pit analysis: the fast paths of the per-image job agree with plain library computations.
+
+Reference routines: numpy (``any``, ``linalg.lstsq``, ``nanpercentile``), OpenCV drawing of the
+test pictures. Scenes are invented (synthetic ground truth).
+"""
+
+from __future__ import annotations
+
+import cv2
+import numpy as np
+import pandas as pd
+import pytest
+
+from coupon.io.atomic import write_float_tiff
+from coupon.io.heightmap import load_height_map
+from coupon.ratings.scales import ASTM_G46_SIZE
+from coupon.report.pit_figures import PIT_PALETTE, overlay_image, size_class
+from coupon.segment.pits import _CLIPPED, _clipped_fraction, label_components, measure_pits, surface_reference
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_clipped_fraction_matches_numpy(seed):
+    # reference: numpy, fraction of the selected pixels with any channel at or above the clip level
+    rng = np.random.default_rng(seed)
+    rgb = rng.uniform(0.9, 1.0, (123, 77, 3)).astype(np.float32)
+    where = rng.random((123, 77)) < 0.6
+    ref = float((rgb[where] >= _CLIPPED).any(axis=1).mean())
+    assert _clipped_fraction(rgb, where) == pytest.approx(ref, abs=1e-12)
+    # a strided view (as analyse_pits passes it) gives the same
+    assert _clipped_fraction(rgb[::2, ::3], where[::2, ::3]) == pytest.approx(
+        float((rgb[::2, ::3][where[::2, ::3]] >= _CLIPPED).any(axis=1).mean()), abs=1e-12)
+    assert _clipped_fraction(rgb, np.zeros((123, 77), bool)) == 0.0
+
+
+def test_reference_surface_matches_lstsq_on_a_clean_quadratic():
+    # reference: numpy.linalg.lstsq (SVD) on the same design matrix; the normal equations must agree
+    h, w = 600, 900
+    rr, cc = np.mgrid[0:h, 0:w]
+    y, x = rr / w, cc / w
+    true = np.array([2.5, 0.03, -0.02, 0.011, -0.007, 0.004])
+    z = (true[0] + true[1] * x + true[2] * y + true[3] * x * x + true[4] * x * y + true[5] * y * y).astype(np.float64)
+    coef, info = surface_reference(z, np.ones((h, w), bool))
+    np.testing.assert_allclose(coef, true, rtol=0, atol=1e-9)
+    assert info["residual_sigma_mm"] < 1e-9 and info["kept_fraction"] == 1.0
+
+
+def test_depth_in_float32_matches_a_float64_computation():
+    # reference: the deepest point below the fitted reference, computed in float64 with numpy
+    rng = np.random.default_rng(4)
+    h, w = 400, 500
+    rr, cc = np.mgrid[0:h, 0:w]
+    height = (10.0 + 2e-4 * cc - 1e-4 * rr + 0.001 * rng.standard_normal((h, w))).astype(np.float32)
+    labels = np.zeros((h, w), np.int32)
+    for k, (r, c, rad, depth) in enumerate([(100, 100, 12, 0.2), (250, 300, 20, 0.45), (320, 120, 8, 0.05)], 1):
+        disc = (rr - r) ** 2 + (cc - c) ** 2 <= rad**2
+        labels[disc] = k
+        height[disc] -= np.float32(depth * (1 - ((rr[disc] - r) ** 2 + (cc[disc] - c) ** 2) / rad**2))
+    table, _, details = measure_pits(labels.copy(), 10.0, height, np.ones((h, w), bool))
+    scale = float(max(h, w))
+    c6, _ = surface_reference(height, np.ones((h, w), bool), exclude=labels)
+    for pid_row in table.itertuples():
+        # measure_pits renumbers in reading order: find the original label under the centroid
+        k = labels[int(pid_row.y_mm * 10), int(pid_row.x_mm * 10)]
+        m = labels == k
+        yy, xx = rr[m] / scale, cc[m] / scale
+        ref = c6[0] + c6[1] * xx + c6[2] * yy + c6[3] * xx * xx + c6[4] * xx * yy + c6[5] * yy * yy
+        expect = float(np.max(ref - height[m].astype(np.float64)))
+        assert pid_row.depth_mm == pytest.approx(expect, abs=2e-6)
+    assert details["scale_px"] == scale and table["depth_mm"].max() == pytest.approx(0.45, abs=0.01)
+
+
+@pytest.mark.parametrize("shape", [(2401, 3601), (2402, 4800), (3000, 4503)])
+def test_reduced_overlay_puts_outlines_on_the_pits(shape):
+    # a big picture is sampled at the centre pixel of each k x k block; outlines must land on the pits
+    h, w = shape
+    rgb = np.full((h, w, 3), 0.6, np.float32)
+    labels = np.zeros((h, w), np.int32)
+    centres = [(500, 700, 60), (1500, 2200, 90), (2000, 3300, 40)]
+    for k, (r, c, rad) in enumerate(centres, 1):
+        cv2.circle(labels, (c, r), rad, k, -1)
+        cv2.circle(rgb, (c, r), rad, (0.2, 0.2, 0.2), -1)
+    analysed = np.zeros((h, w), bool)
+    analysed[100:-100, 100:-100] = True
+    s = 10.0
+    pits = pd.DataFrame({"pit_id": [1, 2, 3], "x_mm": [c / s for _, c, _ in centres],
+                         "y_mm": [r / s for r, _, _ in centres],
+                         "area_mm2": [np.pi * (rad / s) ** 2 for *_, rad in centres],
+                         "eq_diameter_mm": [2 * rad / s for *_, rad in centres]})
+    out = overlay_image(rgb, labels, analysed, pits, s)
+    k = int(np.ceil(max(h, w) / 2400))
+    n_r, n_c = len(range(k // 2, h, k)), len(range(k // 2, w, k))
+    assert out.shape[1] == n_c and out.shape[0] > n_r  # the legend strip below
+    for (r, c, rad), cls in zip(centres, size_class(pits["area_mm2"].to_numpy())):
+        # the reduced pixel holding the top of the outline shows the pit's size-chart colour
+        rs = next(i for i in range(n_r) if labels[k // 2 + i * k, c - (c - k // 2) % k] > 0)
+        col = out[rs, (c - k // 2) // k].astype(int)
+        np.testing.assert_array_equal(col, PIT_PALETTE[cls])
+        # the pit's centre keeps the picture's grey (not dimmed: inside the analysed region)
+        np.testing.assert_array_equal(out[(r - k // 2) // k, (c - k // 2) // k], [51, 51, 51])
+    # outside the analysed region the picture is dimmed: 0.6 * 255 = 153 -> 0.45 x = 69 (rounded)
+    np.testing.assert_array_equal(out[0, 0], [69, 69, 69])
+
+
+def test_overlay_never_draws_on_the_callers_picture():
+    rgb = np.full((300, 400, 3), 128, np.uint8)
+    labels = np.zeros((300, 400), np.int32)
+    cv2.circle(labels, (200, 150), 20, 1, -1)
+    analysed = np.zeros((300, 400), bool)
+    analysed[20:-20, 20:-20] = True
+    pits = pd.DataFrame({"pit_id": [1], "x_mm": [20.0], "y_mm": [15.0], "area_mm2": [12.6], "eq_diameter_mm": [4.0]})
+    before = rgb.copy()
+    overlay_image(rgb, labels, analysed, pits, 10.0, max_side_px=400)
+    np.testing.assert_array_equal(rgb, before)
+
+
+def test_label_components_reads_bool_and_uint8_alike():
+    rng = np.random.default_rng(9)
+    mask = cv2.GaussianBlur(rng.random((90, 110)), (0, 0), 2) > 0.52
+    n1, l1 = label_components(mask)
+    n2, l2 = label_components(mask.astype(np.uint8))
+    n3, l3 = label_components(mask[:, ::2])  # not contiguous: copied
+    assert n1 == n2 and np.array_equal(l1, l2)
+    assert n3 == label_components(np.ascontiguousarray(mask[:, ::2]))[0]
+
+
+def test_height_map_spread_check_matches_nanpercentile(tmp_path):
+    # reference: numpy.nanpercentile over every value (the loader samples a quarter of a million)
+    rng = np.random.default_rng(5)
+    z_um = rng.normal(0, 8, (1200, 1100)).astype(np.float32)
+    z_um[rng.random(z_um.shape) < 0.1] = np.nan
+    z_um[0, :5] = np.inf
+    write_float_tiff(tmp_path / "h.tiff", z_um)
+    mm = load_height_map(tmp_path / "h.tiff", "um", shape_rc=z_um.shape)
+    assert mm.dtype == np.float32 and np.isnan(mm[0, :5]).all()
+    lo, hi = np.nanpercentile(np.where(np.isfinite(z_um), z_um, np.nan) / 1000, [1, 99])
+    # the spread the loader checks; sampled on a grid it stays within a few percent of the full one
+    step = max(1, int(np.sqrt(mm.size / 2.5e5)))
+    sub = mm[::step, ::step]
+    slo, shi = np.percentile(sub[np.isfinite(sub)], [1, 99])
+    assert (shi - slo) == pytest.approx(hi - lo, rel=0.03)
+    np.testing.assert_allclose(mm[np.isfinite(mm)], z_um[np.isfinite(z_um)] / 1000, rtol=1e-6)
+
+
+def test_size_class_matches_the_scale_one_by_one():
+    # reference: ASTM_G46_SIZE.rate (ASTM G46 size charts, values from memory), applied value by value
+    rng = np.random.default_rng(2)
+    areas = np.concatenate([10 ** rng.uniform(-3, 2.5, 500), [0.0, -1.0, np.nan, np.inf],
+                            ASTM_G46_SIZE.boundaries(), [v for _, v in ASTM_G46_SIZE.charts]])
+    expect = [ASTM_G46_SIZE.rate(a) if np.isfinite(a) and a > 0 else None for a in areas]
+    assert size_class(areas) == [e or "B-1" for e in expect]
