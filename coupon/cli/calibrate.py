@@ -10,13 +10,32 @@ import numpy as np
 
 from coupon.calibrate import colourspace as cs
 from coupon.calibrate.colour import (
-    MATRIX_KINDS, ColourCorrection, box_pixels, fit_colour_matrix, read_patch_table, robust_colour,
-    white_balance_gains, apply_correction,
+    MATRIX_KINDS,
+    ColourCorrection,
+    apply_correction,
+    box_pixels,
+    fit_colour_matrix,
+    read_patch_table,
+    robust_colour,
+    white_balance_gains,
 )
-from coupon.calibrate.indicator import DEFAULT_MAX_DISTANCE, build_model, fit_from_drops, read_indicator_table
-from coupon.calibrate.profile import load_or_new, load_profile, save_profile, step_record
+from coupon.calibrate.indicator import (
+    DEFAULT_MAX_DISTANCE,
+    build_model,
+    fit_from_drops,
+    read_indicator_table,
+)
+from coupon.calibrate.profile import (
+    load_or_new,
+    load_profile,
+    save_profile,
+    step_record,
+)
 from coupon.calibrate.scale import (
-    scale_from_checkerboard, scale_from_points, scale_from_rectangle, scale_given,
+    scale_from_checkerboard,
+    scale_from_points,
+    scale_from_rectangle,
+    scale_given,
 )
 from coupon.calibrate.target import TargetLayout, sample_white_patch
 from coupon.cli.common import fail, max_megapixels_option, parse_numbers, parse_size

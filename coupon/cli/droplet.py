@@ -18,13 +18,27 @@ from coupon.calibrate.indicator import IndicatorModel
 from coupon.calibrate.profile import load_profile
 from coupon.calibrate.scale import check_px_per_mm
 from coupon.calibrate.shipped import default_indicator
-from coupon.cli.common import EXIT_FAILED, db_option, fail, force_option, max_megapixels_option, record_rows, report_failure, workers_option
+from coupon.cli.common import (
+    EXIT_FAILED,
+    db_option,
+    fail,
+    force_option,
+    max_megapixels_option,
+    record_rows,
+    report_failure,
+    workers_option,
+)
 from coupon.errors import AnalysisError, CouponError
 from coupon.io import frametimes as ft
 from coupon.io.atomic import BackgroundWrites, write_csv, write_float_tiff, write_json
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
 from coupon.io.images import expand_image_paths, load_image, try_sha256
-from coupon.segment.droplet import MEASURES, DropletSettings, analyse_frame, series_events
+from coupon.segment.droplet import (
+    MEASURES,
+    DropletSettings,
+    analyse_frame,
+    series_events,
+)
 
 #: droplet.csv columns, in order (the issue's columns are all here, with the same names).
 FRAME_COLUMNS = ["frame", "file", "t_min", "time_source", "capture_time", "drop_found", *MEASURES,

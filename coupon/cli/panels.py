@@ -13,15 +13,37 @@ import pandas as pd
 
 from coupon import __version__
 from coupon.calibrate.profile import Profile, load_profile
-from coupon.cli.common import EXIT_FAILED, db_option, fail, force_option, max_megapixels_option, parse_numbers, parse_size, record_rows, report_failure, workers_option
+from coupon.cli.common import (
+    EXIT_FAILED,
+    db_option,
+    fail,
+    force_option,
+    max_megapixels_option,
+    parse_numbers,
+    parse_size,
+    record_rows,
+    report_failure,
+    workers_option,
+)
 from coupon.errors import AnalysisError, CouponError
 from coupon.io.atomic import write_csv, write_json
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
+from coupon.io.images import (
+    DEFAULT_MAX_PIXELS,
+    expand_image_paths,
+    file_sha256,
+    load_image,
+    try_sha256,
+)
 from coupon.io.tables import read_previous
-from coupon.io.images import DEFAULT_MAX_PIXELS, expand_image_paths, file_sha256, load_image, try_sha256
 from coupon.report.panel_figures import write_panel_overlay
 from coupon.segment.panels import PanelSettings, rate_panel
-from coupon.segment.panels.detect import check_panel_size, find_panels, read_qr_codes, rectify_panel
+from coupon.segment.panels.detect import (
+    check_panel_size,
+    find_panels,
+    read_qr_codes,
+    rectify_panel,
+)
 from coupon.segment.panels.rust import RustSettings
 from coupon.segment.panels.scribe import SCRIBE_MODES, ScribeSettings
 

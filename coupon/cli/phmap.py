@@ -12,12 +12,19 @@ import pandas as pd
 
 from coupon.calibrate.profile import Profile, load_profile
 from coupon.calibrate.shipped import default_indicator
-from coupon.cli.common import EXIT_FAILED, fail, force_option, max_megapixels_option, report_failure, workers_option
+from coupon.cli.common import (
+    EXIT_FAILED,
+    fail,
+    force_option,
+    max_megapixels_option,
+    report_failure,
+    workers_option,
+)
 from coupon.errors import CouponError
 from coupon.io.atomic import write_csv, write_float_tiff
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
-from coupon.io.tables import read_previous
 from coupon.io.images import expand_image_paths, load_image, try_sha256
+from coupon.io.tables import read_previous
 from coupon.report.figures import ph_figure
 
 SUMMARY_COLUMNS = ["image", "ph_median", "ph_p05", "ph_p95", "indicator_coverage_pct", "ph_tiff", "ph_png", "status"]
