@@ -137,3 +137,50 @@ def test_frame_picture_shows_map_colour_bar_and_outlines(model, tmp_path):
     assert tuple(np.round(255 * np.array(NO_DATA_GREY)).astype(int)) in colours  # no reading
     for zone in ("drop", "acidic", "basic", "rust"):
         assert dfig._rgb255(dfig.ZONE_COLOURS[zone]) in colours, zone
+
+
+@settings(max_examples=30, deadline=None)
+@given(hnp.arrays(np.float32, (23, 31), elements=st.floats(2, 12, width=32) | st.just(np.float32("nan"))),
+       hnp.arrays(bool, (23, 31)))
+def test_zone_masks_one_blur_matches_one_blur_per_zone(ph, drop):
+    # the plain computation: each zone's mask blurred on its own (OpenCV's GaussianBlur, one channel)
+    ours = dfig.zone_masks(ph, drop, 6.0, 8.0)
+    for name, m in (("acidic", ph < 6.0), ("basic", ph > 8.0)):
+        ref = cv2.GaussianBlur((m & drop).astype(np.float32), (0, 0), 1.5) > 0.5
+        assert np.array_equal(ours[name], ref), name
+
+
+def test_colour_bar_pieces_are_cached_read_only_and_match_the_colour_map():
+    strip = dfig._colour_strip(50, 7, 3.0, 11.0)
+    assert strip is dfig._colour_strip(50, 7, 3.0, 11.0) and not strip.flags.writeable
+    direct = dfig.colourise_ph(np.linspace(11.0, 3.0, 50)[:, None].repeat(7, axis=1), (3.0, 11.0))
+    assert np.array_equal(strip, direct)
+    assert not dfig._bar_label().flags.writeable
+
+
+def test_frame_figure_drawn_on_writer_thread_from_its_own_copies(model, tmp_path):
+    # the picture is drawn later on the writer thread: changing the caller's arrays after the call must not
+    # change it.  The writer is held busy until the arrays have been overwritten, so the order is certain.
+    import threading
+
+    from coupon.io.atomic import BackgroundWrites
+
+    spec = common_practice_spec()
+    rgb, _ = render_frame(spec, spec.n_frames - 1, seed=7)
+    res = core.analyse_frame(rgb, model, spec.px_per_mm)
+    kw = {"title": "frame 9", "px_per_mm": res.work_px_per_mm, "acidic_below": 6.0, "basic_above": 8.0,
+          "ph_range": (3.0, 11.0)}
+    ph, drop, rust = res.ph_map.copy(), res.drop_mask.copy(), res.rust_mask.copy()
+    expected = dfig.frame_picture(ph, drop, rust, **kw)
+    release = threading.Event()
+    with BackgroundWrites() as w:
+        w.submit("hold", release.wait, 30)
+        path = dfig.frame_figure(ph, drop, rust, tmp_path / "f_ph.png", **kw)
+        assert not path.exists()  # not drawn yet
+        ph[:] = 7.0
+        drop[:] = False
+        rust[:] = True
+        release.set()
+    assert not w.errors
+    img = cv2.cvtColor(cv2.imread(str(path)), cv2.COLOR_BGR2RGB)
+    assert np.array_equal(img, expected)

@@ -31,11 +31,13 @@ ZONE_COLOURS = {"acidic": PALETTE[3], "neutral": PALETTE[2], "basic": PALETTE[0]
 def zone_masks(ph_map: np.ndarray, drop: np.ndarray, acidic_below: float, basic_above: float,
                smooth_px: float = 1.5) -> dict[str, np.ndarray]:
     """Smoothed acidic and basic zone masks for outlining (the numbers use the raw pixels)."""
-    out = {}
-    for name, m in (("acidic", ph_map < acidic_below), ("basic", ph_map > basic_above)):
-        f = cv2.GaussianBlur((m & drop).astype(np.float32), (0, 0), smooth_px)
-        out[name] = f > 0.5
-    return out
+    # both masks as the two channels of one image: one blur pass (the filter works on each channel alone)
+    both = np.empty(ph_map.shape + (2,), np.float32)
+    with np.errstate(invalid="ignore"):
+        np.logical_and(ph_map < acidic_below, drop, out=both[..., 0], casting="unsafe")
+        np.logical_and(ph_map > basic_above, drop, out=both[..., 1], casting="unsafe")
+    f = cv2.GaussianBlur(both, (0, 0), smooth_px).reshape(both.shape)
+    return {"acidic": f[..., 0] > 0.5, "basic": f[..., 1] > 0.5}
 
 
 #: Per-frame picture: the map is enlarged (never reduced) to about this longest side (px).  The PNG
@@ -112,10 +114,21 @@ def frame_figure(ph_map: np.ndarray, drop: np.ndarray, rust: np.ndarray, dest: s
     matplotlib's viridis as a 256-entry table, so it matches the series
     figures, which matplotlib draws.
     """
-    picture = frame_picture(ph_map, drop, rust, title=title, px_per_mm=px_per_mm, acidic_below=acidic_below,
-                            basic_above=basic_above, ph_range=ph_range)
-    # encoding runs on the second core when the command has a background writer active
-    return defer(dest, write_png_fast, dest, picture)
+    # Drawing and encoding both run on the writer thread when the command has a background writer active
+    # (:class:`coupon.io.atomic.BackgroundWrites`), so the analysis of the next frame does not wait for them.
+    # The thread gets its own copies of the three small arrays (about 0.1 ms): whatever the caller does
+    # with the frame's arrays afterwards cannot change a picture that is drawn later.
+    kw = {"title": str(title), "px_per_mm": float(px_per_mm), "acidic_below": float(acidic_below),
+          "basic_above": float(basic_above), "ph_range": (float(ph_range[0]), float(ph_range[1]))}
+    rust_copy = None if rust is None else np.array(rust, dtype=bool)
+    return defer(dest, _draw_and_write, dest, np.array(ph_map, dtype=np.float32), np.array(drop, dtype=bool),
+                 rust_copy, kw)
+
+
+def _draw_and_write(dest: str | Path, ph_map: np.ndarray, drop: np.ndarray, rust: np.ndarray | None,
+                    kw: dict) -> Path:
+    """:func:`frame_picture` then :func:`write_png_fast` (the job :func:`frame_figure` hands to the writer)."""
+    return write_png_fast(dest, frame_picture(ph_map, drop, rust, **kw))
 
 
 def write_png_fast(dest: str | Path, rgb_u8: np.ndarray) -> Path:
@@ -134,6 +147,30 @@ def write_png_fast(dest: str | Path, rgb_u8: np.ndarray) -> Path:
     with atomic_path(dest) as tmp:
         tmp.write_bytes(buf.tobytes())
     return Path(dest)
+
+
+@functools.lru_cache(maxsize=8)
+def _colour_strip(height_px: int, width_px: int, lo: float, hi: float) -> np.ndarray:
+    """The colour bar's strip (top = high pH); kept per size and range, as a series repeats them.
+
+    Read-only: it is pasted into each page, never drawn on.
+    """
+    levels = np.linspace(hi, lo, height_px)
+    strip = colourise_ph(levels[:, None].repeat(width_px, axis=1), (lo, hi))
+    strip.flags.writeable = False
+    return strip
+
+
+@functools.lru_cache(maxsize=1)
+def _bar_label() -> np.ndarray:
+    """The colour bar's label written sideways (read-only, made once)."""
+    label = "pH (grey: not indicator colour)"
+    lw, lh = _text_size(label, 0.45)
+    lab_img = np.full((lh + 6, lw + 4, 3), 255, np.uint8)
+    _text(lab_img, label, (2, lh), 0.45)
+    lab_img = np.ascontiguousarray(cv2.rotate(lab_img, cv2.ROTATE_90_COUNTERCLOCKWISE))
+    lab_img.flags.writeable = False
+    return lab_img
 
 
 def frame_picture(ph_map: np.ndarray, drop: np.ndarray, rust: np.ndarray, *, title: str, px_per_mm: float,
@@ -190,9 +227,7 @@ def frame_picture(ph_map: np.ndarray, drop: np.ndarray, rust: np.ndarray, *, tit
 
     lo, hi = float(ph_range[0]), float(ph_range[1])
     bx = margin + mw + margin
-    levels = np.linspace(hi, lo, mh)  # top = high pH
-    strip = colourise_ph(levels[:, None].repeat(bar_w, axis=1), (lo, hi))
-    page[title_h:title_h + mh, bx:bx + bar_w] = strip
+    page[title_h:title_h + mh, bx:bx + bar_w] = _colour_strip(mh, bar_w, lo, hi)
     cv2.rectangle(page, (bx - 1, title_h - 1), (bx + bar_w, title_h + mh), _INK, 1)
     step = 1.0 if hi - lo <= 10 else 2.0
     for t in np.arange(np.ceil(lo / step) * step, hi + 1e-9, step):
@@ -200,11 +235,7 @@ def frame_picture(ph_map: np.ndarray, drop: np.ndarray, rust: np.ndarray, *, tit
         cv2.line(page, (bx + bar_w, y), (bx + bar_w + 4, y), _INK, 1)
         _text(page, f"{t:g}", (bx + bar_w + 7, y + 5), 0.42)
     # the colour bar's label, written sideways
-    label = "pH (grey: not indicator colour)"
-    lw, lh = _text_size(label, 0.45)
-    lab_img = np.full((lh + 6, lw + 4, 3), 255, np.uint8)
-    _text(lab_img, label, (2, lh), 0.45)
-    lab_img = cv2.rotate(lab_img, cv2.ROTATE_90_COUNTERCLOCKWISE)
+    lab_img = _bar_label()
     lx = bx + bar_w + tick_w
     ly = title_h + max(0, (mh - lab_img.shape[0]) // 2)
     hh = min(lab_img.shape[0], ph_h - ly)
