@@ -144,8 +144,25 @@ def calibration_step(ctx: DemoContext) -> None:
     }
 
 
+def job_sample_scenes(ctx: DemoContext) -> None:
+    """One small sample scene per job (a tray, a droplet frame, a coupon), with truth, for ``demo_images/``."""
+    from coupon.synth.droplet import DropletSeriesSpec, public_truth, render_frame
+    from coupon.synth.panels import PanelSpec, TraySettings, tray_scene, truth_summary
+    from coupon.synth.pits import pitted_coupon_scene
+
+    specs = [PanelSpec("white", ("general",), amount=0.6, scribe="line", creep_mm=1.2),
+             PanelSpec("grey", ("spots",), amount=0.8)]
+    img, truth = tray_scene(specs, seed=901, settings=TraySettings(image_wh=(1400, 1100), cols=2))
+    ctx.save_scene("sample_tray_0336h.jpg", img, truth_summary(truth))
+    spec = DropletSeriesSpec(n_frames=6, image_wh=(540, 480), px_per_mm=30.0)
+    rgb, dtruth = render_frame(spec, 5, seed=902)
+    ctx.save_scene("sample_drop_t025min.jpg", rgb, public_truth(dtruth))
+    rgb, _, ptruth = pitted_coupon_scene(seed=903, coupon_mm=(40, 30), px_per_mm=15.0, n_pits=30)
+    ctx.save_scene("sample_coupon_cleaned.jpg", rgb, ptruth)
+
+
 #: Functions that write a job's scenes into ``ctx.images`` (used by ``python -m coupon.synth.demo_images``).
-SCENE_WRITERS: list[Callable[[DemoContext], object]] = [calibration_scenes]
+SCENE_WRITERS: list[Callable[[DemoContext], object]] = [calibration_scenes, job_sample_scenes]
 
 #: (name, step) in run order; later jobs append theirs.
 #: A step is a function or "module:function" (imported when the demo runs, so importing
