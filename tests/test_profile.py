@@ -35,7 +35,12 @@ def test_round_trip(tmp_path):
     data = json.loads(path.read_text())
     assert data["schema_version"] == 1 and data["scale"]["px_per_mm"] == pytest.approx(4.0)
     assert set(data) >= {"scale", "colour", "indicator", "history", "tool_version", "created"}
-    assert again.sha256 and len(again.sha256) == 64
+    import hashlib
+
+    assert again.sha256 == hashlib.sha256(path.read_bytes()).hexdigest()
+    path.write_text(path.read_text() + " ")  # the hash is of the bytes that were read, not of a later file
+    assert again.sha256 != hashlib.sha256(path.read_bytes()).hexdigest()
+    assert again.with_part("scale", again.scale, {}).sha256 is None
 
 
 @pytest.mark.parametrize("text,match", [

@@ -52,6 +52,8 @@ class Profile:
     history: tuple[dict, ...] = ()
     created: str = field(default_factory=_now)
     path: Path | None = None
+    #: SHA-256 of the file's bytes as read by :func:`load_profile` (None for a profile not read from a file)
+    sha256: str | None = None
 
     def to_dict(self) -> dict:
         return {
@@ -70,14 +72,8 @@ class Profile:
         """A copy with one part replaced and the step appended to the history."""
         if part not in PARTS:
             raise ValueError(part)
-        return replace(self, **{part: value}, history=(*self.history, step_record))
-
-    @property
-    def sha256(self) -> str | None:
-        """Hash of the profile file as loaded (for the audit trail of every result)."""
-        if self.path is None or not self.path.exists():
-            return None
-        return hashlib.sha256(self.path.read_bytes()).hexdigest()
+        # the copy is no longer the file that was read: it has no file hash until saved and reloaded
+        return replace(self, **{part: value}, history=(*self.history, step_record), sha256=None)
 
 
 def step_record(step: str, files: list[tuple[str, str]], settings: dict, residuals: dict | None = None) -> dict:
@@ -104,7 +100,11 @@ def load_profile(path: str | Path) -> Profile:
     if not path.is_file():
         raise ProfileError("profile not found; create it with 'coupon calibrate scale|colour|indicator'", path)
     try:
-        data = json.loads(path.read_text(encoding="utf-8"))
+        file_bytes = path.read_bytes()  # read once: the hash in every result is of exactly these bytes
+    except OSError as exc:
+        raise ProfileError(f"profile cannot be read ({exc.strerror or exc})", path) from None
+    try:
+        data = json.loads(file_bytes.decode("utf-8"))
     except UnicodeDecodeError:
         raise ProfileError("profile is not a text file (expected JSON)", path) from None
     except json.JSONDecodeError as exc:
@@ -136,7 +136,8 @@ def load_profile(path: str | Path) -> Profile:
     history = data.get("history", [])
     if not isinstance(history, list):
         raise ProfileError("'history' must be a list", path)
-    return Profile(**parts, history=tuple(history), created=str(data.get("created", _now())), path=path)
+    return Profile(**parts, history=tuple(history), created=str(data.get("created", _now())), path=path,
+                   sha256=hashlib.sha256(file_bytes).hexdigest())
 
 
 def load_or_new(path: str | Path) -> Profile:

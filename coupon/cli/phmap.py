@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import click
@@ -75,8 +75,7 @@ def phmap(images, profile_path, out_dir, workers, force, max_megapixels):
     except CouponError as exc:
         raise fail(exc) from None
     if profile.indicator is None:
-        profile = Profile(profile.scale, profile.colour, default_indicator(), profile.history, profile.created,
-                          profile.path)
+        profile = replace(profile, indicator=default_indicator())
     elif profile.indicator.is_default:
         warnings.warn("the profile's indicator model is the generic table, not a buffer calibration; pH is approximate")
     out_dir.mkdir(parents=True, exist_ok=True)
