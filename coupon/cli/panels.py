@@ -327,9 +327,9 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
     profile_sha = profile.sha256 if profile else None
     job = PanelsJob(settings, profile, out_dir, layout, hours, manifest, int(max_megapixels * 1e6))
     failed = 0
-    todo = []
+    todo, shas = [], {}
     for p in paths:
-        sha = try_sha256(p)
+        sha = shas[str(p)] = try_sha256(p)
         if not force and sha and ledger.is_done(p, sha, digest) and str(p) in by_image:
             click.echo(f"{p}: already rated (use --force to redo)")
             if not is_recorded(db, "panels", p, sha):  # a database added after the first run gets every image
@@ -344,7 +344,7 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
             failed += bool(bad)
             for r in bad:
                 report_failure(f"{out.item} {r['position']}: {r['status']}")
-            sha = file_sha256(out.item)
+            sha = shas[str(out.item)] or file_sha256(out.item)  # hashed once, in the pre-scan
             outputs = [r[k] for r in rows for k in ("overlay", "json") if isinstance(r.get(k), str)]
             ledger.record(out.item, sha, digest, outputs, "ok" if not bad else "partial")
             failed += not record_rows(db, "panels", out.item, sha, db_settings, profile_sha, {"panels": rows},
