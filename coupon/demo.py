@@ -61,20 +61,9 @@ class DemoContext:
                 raise click.ClickException(f"demo step failed: coupon {' '.join(map(str, args))}") from None
 
     def save_scene(self, name: str, rgb: np.ndarray, truth: dict, quality: int = 92) -> Path:
-        """Write a scene as JPEG (as a camera would) and its ground truth as JSON."""
-        import cv2
-
-        self.images.mkdir(parents=True, exist_ok=True)
+        """Write a scene as JPEG (as a camera would) or PNG, and its ground truth as JSON."""
         path = self.images / name
-        if path.suffix.lower() in (".jpg", ".jpeg"):
-            from coupon.io.atomic import atomic_path
-
-            with atomic_path(path) as tmp:
-                if not cv2.imwrite(str(tmp), cv2.cvtColor(to_uint8(rgb), cv2.COLOR_RGB2BGR),
-                                   [cv2.IMWRITE_JPEG_QUALITY, quality]):
-                    raise OSError(f"{path}: could not write the demo image")
-        else:
-            write_image(path, to_uint8(rgb))
+        write_image(path, to_uint8(rgb), jpeg_quality=quality)
         write_text(path.with_suffix(".truth.json"), to_json_text(_plain(truth)))
         return path
 

@@ -92,12 +92,13 @@ def write_csv(dest: str | os.PathLike, table: pd.DataFrame) -> Path:
     return Path(dest)
 
 
-def write_image(dest: str | os.PathLike, rgb_u8: np.ndarray) -> Path:
-    """Write an (M, N, 3) uint8 RGB picture (PNG or JPEG by suffix)."""
+def write_image(dest: str | os.PathLike, rgb_u8: np.ndarray, jpeg_quality: int = 95) -> Path:
+    """Write an (M, N, 3) uint8 RGB picture (PNG or JPEG by suffix; ``jpeg_quality`` for JPEG)."""
     import cv2
 
+    params = [cv2.IMWRITE_JPEG_QUALITY, int(jpeg_quality)] if Path(dest).suffix.lower() in (".jpg", ".jpeg") else []
     with atomic_path(dest) as tmp:
-        if not cv2.imwrite(str(tmp), cv2.cvtColor(np.ascontiguousarray(rgb_u8), cv2.COLOR_RGB2BGR)):
+        if not cv2.imwrite(str(tmp), cv2.cvtColor(np.ascontiguousarray(rgb_u8), cv2.COLOR_RGB2BGR), params):
             raise OSError(f"{dest}: could not write image")
     return Path(dest)
 
