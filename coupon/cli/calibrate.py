@@ -40,7 +40,7 @@ from coupon.calibrate.scale import (
 from coupon.calibrate.target import TargetLayout, sample_white_patch
 from coupon.cli.common import fail, max_megapixels_option, parse_numbers, parse_size
 from coupon.errors import CouponError
-from coupon.io.images import file_sha256, load_image
+from coupon.io.images import file_sha256, load_image, try_sha256
 
 
 @click.group()
@@ -87,10 +87,8 @@ def scale_cmd(image, checker, square_mm, px_per_mm, points, distance_mm, rect, r
     method = methods[0]
     if method != "px-per-mm" and image is None:
         raise click.UsageError(f"--{method} needs the IMAGE it was measured on")
-    files, settings = [], {"method": method}
+    files, settings, img = [], {"method": method}, None
     try:
-        if image is not None:
-            files.append((str(image), file_sha256(image) if image.is_file() else ""))
         if method == "checker":
             if square_mm is None:
                 raise click.UsageError("--checker needs --square-mm (the printed square size)")
@@ -105,7 +103,7 @@ def scale_cmd(image, checker, square_mm, px_per_mm, points, distance_mm, rect, r
             if distance_mm is None:
                 raise click.UsageError("--points needs --distance-mm")
             x1, y1, x2, y2 = parse_numbers(points, 4, "X1,Y1,X2,Y2", "--points")
-            _load(image, max_megapixels)  # the points must be on a real image
+            img = _load(image, max_megapixels)  # the points must be on a real image
             result = scale_from_points((x1, y1), (x2, y2), distance_mm)
             settings.update(points=[x1, y1, x2, y2], distance_mm=distance_mm)
         else:
@@ -113,9 +111,11 @@ def scale_cmd(image, checker, square_mm, px_per_mm, points, distance_mm, rect, r
                 raise click.UsageError("--rect needs --rect-mm WxH")
             corners = np.array(parse_numbers(rect, 8, "X1,Y1,...,X4,Y4", "--rect")).reshape(4, 2)
             w_mm, h_mm = parse_size(rect_mm, "--rect-mm")
-            _load(image, max_megapixels)
+            img = _load(image, max_megapixels)
             result = scale_from_rectangle(corners, w_mm, h_mm)
             settings.update(rect=corners.tolist(), rect_mm=[w_mm, h_mm])
+        if image is not None:  # the loader already hashed the image it read
+            files.append((str(image), img.sha256 if img is not None else try_sha256(image)))
         profile = load_or_new(profile_path)
         rec = step_record("scale", files, settings, {"reprojection_error_mm": result.reprojection_error_mm})
         save_profile(profile.with_part("scale", result, rec), profile_path)
