@@ -26,7 +26,7 @@ from coupon.cli.common import (
 from coupon.errors import AnalysisError, CouponError
 from coupon.io.atomic import write_csv, write_json
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
-from coupon.io.heightmap import HEIGHT_UNITS, load_height_map
+from coupon.io.heightmap import HEIGHT_UNITS, height_map_to_mm, read_height_map
 from coupon.io.images import expand_image_paths, file_sha256, load_image, try_sha256
 from coupon.io.tables import read_previous
 from coupon.ratings import mass_loss as ml
@@ -98,17 +98,22 @@ def pit_rows_for_image(path: Path, job: PitJob) -> dict:
     """
     hpath = job.height_path(path)
     known = dict(job.height_sha256).get(str(hpath)) if hpath is not None else None
-    with ThreadPoolExecutor(max_workers=1) as hasher:
-        # hashing a large height map (hashlib releases the GIL) overlaps the analysis on the second core
-        hash_future = hasher.submit(file_sha256, hpath) if hpath is not None and known is None else None
-        return _pit_rows(path, job, hpath, known, hash_future)
+    with ThreadPoolExecutor(max_workers=1) as helpers:
+        # one helper thread on the second core (OpenCV's decoders and hashlib release the GIL), in turn: the
+        # height map is read while the image decodes, then hashed while the image is analysed
+        read_future = hash_future = None
+        if hpath is not None:
+            read_future = helpers.submit(read_height_map, hpath, job.height_unit)
+            if known is None:
+                hash_future = helpers.submit(file_sha256, hpath)
+        return _pit_rows(path, job, hpath, known, read_future, hash_future)
 
 
-def _pit_rows(path: Path, job: PitJob, hpath: Path | None, known: str | None, hash_future) -> dict:
-    img = load_image(path, max_pixels=job.max_pixels)
+def _pit_rows(path: Path, job: PitJob, hpath: Path | None, known: str | None, read_future, hash_future) -> dict:
+    img = load_image(path, max_pixels=job.max_pixels)  # an image error comes first, as in a serial read
     height = None
     if hpath is not None:
-        height = load_height_map(hpath, job.height_unit, shape_rc=img.shape_rc)
+        height = height_map_to_mm(read_future.result(), hpath, job.height_unit, shape_rc=img.shape_rc)
     try:
         hom = None if job.homography is None else np.asarray(job.homography, dtype=np.float64)
         res = analyse_pits(img.rgb, job.settings, height, homography_px_to_mm=hom, height_unit=job.height_unit)

@@ -105,6 +105,20 @@ def load_height_map(path: str | os.PathLike, unit: str, shape_rc: tuple[int, int
         Missing or unreadable file, wrong layout, wrong size, no valid values, or a
         spread of heights implausible for the stated unit (a likely unit mix-up).
     """
+    return height_map_to_mm(read_height_map(path, unit), path, unit, shape_rc)
+
+
+def read_height_map(path: str | os.PathLike, unit: str) -> np.ndarray:
+    """The stored values of a height map, as read (the slow part of :func:`load_height_map`).
+
+    ``coupon pits`` reads the map on a second thread while the image decodes,
+    then checks and converts it with :func:`height_map_to_mm`.
+
+    Raises
+    ------
+    ImageLoadError
+        Missing or unreadable file, wrong layout.
+    """
     path = Path(path)
     if unit not in HEIGHT_UNITS:
         raise ValueError(f"{unit!r} height unit is invalid, it must be one of {sorted(HEIGHT_UNITS)}")
@@ -117,6 +131,13 @@ def load_height_map(path: str | os.PathLike, unit: str, shape_rc: tuple[int, int
         arr = _read_text(path)
     else:
         raise ImageLoadError(f"height map must be a .tif/.tiff or .csv/.txt file, got {suffix or 'no suffix'!r}", path)
+    return arr
+
+
+def height_map_to_mm(arr: np.ndarray, path: str | os.PathLike, unit: str,
+                     shape_rc: tuple[int, int] | None = None) -> np.ndarray:
+    """Check the values :func:`read_height_map` returned and convert them to mm (see :func:`load_height_map`)."""
+    path = Path(path)
     if shape_rc is not None and tuple(arr.shape) != tuple(shape_rc):
         raise ImageLoadError(
             f"height map is {arr.shape[1]}x{arr.shape[0]} values but the image is {shape_rc[1]}x{shape_rc[0]} px "

@@ -872,9 +872,9 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
     if area_px < 100:
         raise AnalysisError(f"the edge band of {settings.edge_mm} mm leaves no area to analyse "
                             f"(coupon region {np.count_nonzero(coupon) / s**2:.1f} mm2); reduce --edge-mm")
-    step = max(1, int(np.sqrt(grey.size / 1e6)))  # a million sample points estimate clipping
-    a_sub = analysed[::step, ::step]
-    clipped = _clipped_fraction(rgb[::step, ::step], a_sub)
+    # a quarter of a million sample points estimate clipping (a 5 % limit: its standard error is 0.04 %)
+    step = max(1, int(np.sqrt(grey.size / 2.5e5)))
+    clipped = _clipped_fraction(rgb[::step, ::step], analysed[::step, ::step])
     if clipped > 0.05:
         raise AnalysisError(f"coupon surface is overexposed ({100 * clipped:.0f} % of its pixels clipped at white); "
                             "reduce the exposure so the metal is not saturated")
