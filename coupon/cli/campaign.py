@@ -151,7 +151,7 @@ def _parquet_ready(df: pd.DataFrame) -> pd.DataFrame:
     out = {}
     for c in df.columns:
         s = df[c]
-        if s.dtype == object:
+        if s.dtype == object or pd.api.types.is_string_dtype(s):  # pandas 3 reads SQLite text as "str"
             try:
                 s = pd.to_numeric(s)
             except (TypeError, ValueError):
