@@ -80,6 +80,7 @@ def main() -> None:
                          "time and the best round is printed too (for a shared machine)")
     args = ap.parse_args()
 
+    import cv2
     import numpy as np
     from click.testing import CliRunner
 
@@ -113,12 +114,18 @@ def main() -> None:
               f"series of {args.frames} frames")
         prof = write_profile(tmp / "profile.json", spec.px_per_mm)
 
+        raw_jpeg = [np.fromfile(p, np.uint8) for p in distinct]
+        bare: list[float] = []  # OpenCV's JPEG decode alone (no orientation, float conversion or hash)
+
         def decode_times():
             out = []
-            for p in distinct * 3:
+            for p, b in zip(distinct * 3, raw_jpeg * 3):
                 t = time.perf_counter()
                 load_image(p)
                 out.append(time.perf_counter() - t)
+                t = time.perf_counter()
+                cv2.imdecode(b, cv2.IMREAD_COLOR)
+                bare.append(time.perf_counter() - t)
             return out
 
         def run(paths, extra, out):
@@ -163,6 +170,10 @@ def main() -> None:
             print(f"    RSS after {max(1, n // 10)} frames {r['rss_start']:.0f} MB, after all {n} frames "
                   f"{r['rss_end']:.0f} MB (growth {r['rss_end'] - r['rss_start']:+.0f} MB; streaming: near 0), "
                   f"peak incl. series pictures {r['peak']:.0f} MB")
+    bare_s = float(np.median(bare))
+    print(f"OpenCV's JPEG decode alone (cv2.imdecode, median of {len(bare)}): {bare_s * 1000:7.1f} ms per frame; "
+          "frame loop against it: " + ", ".join(f"{lab} {rd[i]['loop'] / bare_s:5.2f}" for rd in rounds[-1:]
+                                                for lab, i in (("no pictures", 1), ("with pictures", 2))))
     if len(rounds) > 1:
         for label, i in (("no per-frame pictures  ", 1), ("with per-frame pictures", 2)):
             ratios = [rd[i]["loop"] / float(np.median(rd[0])) for rd in rounds]

@@ -1,6 +1,7 @@
 """Benchmark ``coupon pits`` on a 24-megapixel coupon scan (run by hand; not collected by pytest).
 
-Prints, measured in one run: the decode time of the JPEG (``load_image``), the core
+Prints, measured in one run: the decode time of the JPEG (``load_image``, and OpenCV's
+``cv2.imdecode`` alone, the stricter baseline the panels benchmark uses), the core
 analysis time (``analyse_pits``), the full per-image job (analysis, height map,
 figures, JSON: what ``coupon pits`` does per image), their ratios to the decode time
 (goal: the full per-image job, minus its own decode, <= 4 x decode) and the peak
@@ -71,7 +72,10 @@ def main() -> None:
     parts: dict[str, float] = {}
     rows = None
     hpath = tmp / "scan24_height.tiff"
+    t_jpeg = float("inf")
+    raw = np.fromfile(path, np.uint8)
     for _ in range(args.repeat):  # interleaved: a burst of load from others hits every step alike
+        t_jpeg = min(t_jpeg, best_of(lambda: cv2.imdecode(raw, cv2.IMREAD_COLOR), 1)[0])
         td, img = best_of(lambda: load_image(path), 1)
         tc, _ = best_of(lambda: analyse_pits(img.rgb, settings), 1)
         # the full job's other steps, one by one (where its time goes)
@@ -91,7 +95,8 @@ def main() -> None:
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     s = rows["summary"]
     full_ratio = (t_full - t_decode) / t_decode  # the full job decodes the image itself: subtract it
-    print(f"decode (load_image)                    {t_decode:6.3f} s")
+    print(f"decode (load_image: JPEG decode, orientation, float RGB, SHA-256) {t_decode:6.3f} s; "
+          f"OpenCV's JPEG decode alone (cv2.imdecode) {t_jpeg:6.3f} s")
     print(f"core analysis (analyse_pits, no height map) {t_core:6.3f} s   ratio {t_core / t_decode:5.2f} x decode")
     print(f"full job (decode, height map, analysis, overlay, histogram, JSON) {t_full:6.3f} s   "
           f"ratio {full_ratio:5.2f} x decode without its decode ({t_full / t_decode:5.2f} x with it)")
@@ -101,7 +106,9 @@ def main() -> None:
           f"(truth {truth['counted']['max_depth_mm']:.3f}); overlay {Path(s['overlay']).name}")
     print(f"peak memory (max RSS of this process) {peak:.0f} MiB (at start {rss0:.0f} MiB; the decoded image alone "
           f"is {4 * shape[0] * shape[1] * 3 / 2**20:.0f} MiB of float32)")
-    print("goal: full job <= 4 x decode (without its decode):", "met" if full_ratio <= 4 else "NOT met")
+    print(f"full job against OpenCV's JPEG decode alone: {t_full / t_jpeg:5.2f} x (whole job, its own decode included)")
+    print("goal: full job <= 4 x decode (without its decode):", "met" if full_ratio <= 4 else "NOT met",
+          "| against the bare JPEG decode:", "met" if t_full / t_jpeg <= 4 else "NOT met")
 
 
 if __name__ == "__main__":
