@@ -54,7 +54,7 @@ SUMMARY_COLUMNS = [
     "pitting_factor", "overlay", "status",
 ]
 # 3: noise estimate from 250k samples; 2: touching pits split more often, 12.4 mm background window
-COMMAND_VERSION = 3
+COMMAND_VERSION = 4  # 4: the clipped fraction in the JSON comes from a quarter-million-pixel sample
 CAUTION = ("Ratings and rates support, and do not replace, a qualified corrosion engineer and the governing "
            "standard (ASTM G1, G46) or specification; structural decisions need measured pit depths and "
            "licensed judgement.")

@@ -22,6 +22,7 @@ import hashlib
 import io
 import os
 from dataclasses import dataclass, field
+from functools import cached_property
 from pathlib import Path
 
 import cv2
@@ -55,8 +56,12 @@ class LoadedImage:
     ----------
     path : Path
         The file it came from.
-    rgb : (M, N, 3) ndarray of float32
-        sRGB-encoded colour in [0, 1].
+    pixels : (M, N, 3) ndarray of uint8, uint16 or float32
+        The decoded pixels, RGB order, orientation applied, in the file's own type.
+    rgb : (M, N, 3) ndarray of float32 (property)
+        sRGB-encoded colour in [0, 1], the package convention: converted from
+        ``pixels`` at the first access and kept (a job that can work on the 8-bit
+        pixels, such as ``coupon pits``, never pays for the float copy).
     bit_depth : int
         Bits per channel of the source (8, 16 or 32 for float TIFF).
     sha256 : str
@@ -68,16 +73,26 @@ class LoadedImage:
     """
 
     path: Path
-    rgb: np.ndarray = field(repr=False)
+    pixels: np.ndarray = field(repr=False)
     bit_depth: int
     sha256: str
     capture_time: _dt.datetime | None = None
     notes: tuple[str, ...] = ()
 
+    @cached_property
+    def rgb(self) -> np.ndarray:
+        """Float32 sRGB in [0, 1] (see the class notes)."""
+        return to_float_rgb(self.pixels)[0]
+
+    @property
+    def rgb_u8(self) -> np.ndarray | None:
+        """The 8-bit RGB pixels as decoded, or None for a 16-bit or float image."""
+        return self.pixels if self.pixels.dtype == np.uint8 else None
+
     @property
     def shape_rc(self) -> tuple[int, int]:
         """(rows, cols) of the image."""
-        return self.rgb.shape[0], self.rgb.shape[1]
+        return self.pixels.shape[0], self.pixels.shape[1]
 
 
 def _read_bytes(path: Path) -> bytes:
@@ -186,6 +201,44 @@ def _apply_orientation(arr: np.ndarray, orientation: int) -> np.ndarray:
     return arr if op is None else np.ascontiguousarray(op(arr))
 
 
+def to_rgb3(arr: np.ndarray) -> tuple[np.ndarray, int]:
+    """A decoded array (any of OpenCV's layouts, RGB order) as three channels, its pixel type kept.
+
+    Parameters
+    ----------
+    arr : (M, N) or (M, N, C) ndarray of uint8, uint16 or float
+        C may be 1, 2 (grey and alpha), 3 or 4 (alpha is dropped).
+
+    Returns
+    -------
+    rgb : (M, N, 3) ndarray of the input's type
+    bit_depth : int
+        8, 16, or 32 for float.
+
+    Raises
+    ------
+    ValueError
+        Another pixel type.
+    """
+    if arr.dtype == np.uint8:
+        depth = 8
+    elif arr.dtype == np.uint16:
+        depth = 16
+    elif arr.dtype in (np.float32, np.float64):
+        depth = 32
+    else:
+        raise ValueError(f"unsupported pixel type {arr.dtype}; expected uint8, uint16 or float")
+    if arr.ndim == 2:
+        arr = arr[:, :, None]
+    if arr.shape[2] == 1:
+        arr = np.repeat(arr, 3, axis=2)
+    elif arr.shape[2] == 4:
+        arr = arr[:, :, :3]
+    elif arr.shape[2] == 2:  # grey + alpha
+        arr = np.repeat(arr[:, :, :1], 3, axis=2)
+    return arr, depth
+
+
 def to_float_rgb(arr: np.ndarray) -> tuple[np.ndarray, int]:
     """Convert a decoded array (any of OpenCV's layouts, RGB order) to the package convention.
 
@@ -199,22 +252,8 @@ def to_float_rgb(arr: np.ndarray) -> tuple[np.ndarray, int]:
     rgb : (M, N, 3) ndarray of float32 in [0, 1]
     bit_depth : int
     """
-    if arr.dtype == np.uint8:
-        depth, scale = 8, 1.0 / 255.0
-    elif arr.dtype == np.uint16:
-        depth, scale = 16, 1.0 / 65535.0
-    elif arr.dtype in (np.float32, np.float64):
-        depth, scale = 32, 1.0
-    else:
-        raise ValueError(f"unsupported pixel type {arr.dtype}; expected uint8, uint16 or float")
-    if arr.ndim == 2:
-        arr = arr[:, :, None]
-    if arr.shape[2] == 1:
-        arr = np.repeat(arr, 3, axis=2)
-    elif arr.shape[2] == 4:
-        arr = arr[:, :, :3]
-    elif arr.shape[2] == 2:  # grey + alpha
-        arr = np.repeat(arr[:, :, :1], 3, axis=2)
+    arr, depth = to_rgb3(arr)
+    scale = {8: 1.0 / 255.0, 16: 1.0 / 65535.0, 32: 1.0}[depth]
     rgb = arr.astype(np.float32) * np.float32(scale)
     if depth == 32:
         np.clip(rgb, 0.0, 1.0, out=rgb)
@@ -267,12 +306,12 @@ def load_image(path: str | os.PathLike, max_pixels: int = DEFAULT_MAX_PIXELS) ->
         decoded = _apply_orientation(decoded, orientation)
         notes.append(f"EXIF orientation {orientation} applied")
     try:
-        rgb, depth = to_float_rgb(decoded)
+        pixels, depth = to_rgb3(decoded)
     except ValueError as exc:
         raise ImageLoadError(str(exc), path) from None
     return LoadedImage(
         path=path,
-        rgb=rgb,
+        pixels=pixels,
         bit_depth=depth,
         sha256=hashlib.sha256(data).hexdigest(),
         capture_time=capture,
