@@ -148,3 +148,38 @@ def test_size_class_matches_the_scale_one_by_one():
                             ASTM_G46_SIZE.boundaries(), [v for _, v in ASTM_G46_SIZE.charts]])
     expect = [ASTM_G46_SIZE.rate(a) if np.isfinite(a) and a > 0 else None for a in areas]
     assert size_class(areas) == [e or "B-1" for e in expect]
+
+
+@pytest.mark.parametrize("seed", [3, 4])
+def test_eight_bit_pixels_give_the_float_analysis(seed):
+    # ``coupon pits`` analyses an 8-bit scan from its decoded pixels (no float copy); the reference is the
+    # float path on the same pixels (OpenCV's float luma), so pit for pit the results must agree: the 8-bit
+    # luma is rounded to 1/255, which may move an outline pixel here and there, nothing more
+    from coupon.segment.pits import PitSettings, analyse_pits, grey_level
+    from coupon.synth.pits import pitted_coupon_scene
+
+    rgb, _, truth = pitted_coupon_scene(seed=seed, coupon_mm=(40, 30), margin_mm=4, px_per_mm=20.0, n_pits=80,
+                                        touching_pairs=10, near_edge=4)
+    u8 = np.clip(np.rint(rgb * 255), 0, 255).astype(np.uint8)
+    f32 = u8.astype(np.float32) / np.float32(255)
+    np.testing.assert_allclose(grey_level(u8), grey_level(f32), atol=0.5 / 255 + 1e-6)
+    st = PitSettings(px_per_mm=20.0)
+    a, b = analyse_pits(f32, st), analyse_pits(u8, st)
+    assert len(b.pits) == len(a.pits) > 50
+    np.testing.assert_allclose(b.pits["area_mm2"], a.pits["area_mm2"], rtol=0.03, atol=2 / 400)
+    np.testing.assert_allclose(b.pits[["x_mm", "y_mm"]], a.pits[["x_mm", "y_mm"]], atol=0.02)
+    # the region's outline may move by a pixel where the rounded luma tips the threshold
+    assert np.count_nonzero(a.analysed != b.analysed) <= 2e-3 * np.count_nonzero(a.analysed)
+    assert b.analysed_area_mm2 == pytest.approx(a.analysed_area_mm2, rel=2e-3)
+    assert b.details["clipped_pct"] == pytest.approx(a.details["clipped_pct"], abs=0.01)
+    # the overlay drawn from the 8-bit pixels is the one drawn from the float copy
+    assert np.array_equal(overlay_image(u8, b.labels, b.analysed, b.pits, 20.0),
+                          overlay_image(f32, b.labels, b.analysed, b.pits, 20.0))
+
+
+def test_clipped_fraction_on_eight_bit_pixels():
+    # 254 is the first 8-bit level at or above the float clip level (254 / 255 = 0.9961 >= 0.995 > 253 / 255)
+    u8 = np.array([[[253, 0, 0], [254, 0, 0], [0, 0, 255], [10, 20, 30]]], np.uint8)
+    where = np.ones((1, 4), bool)
+    assert _clipped_fraction(u8, where) == pytest.approx(0.5)
+    assert _clipped_fraction(u8.astype(np.float32) / np.float32(255), where) == pytest.approx(0.5)

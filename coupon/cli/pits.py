@@ -116,7 +116,9 @@ def _pit_rows(path: Path, job: PitJob, hpath: Path | None, known: str | None, re
         height = height_map_to_mm(read_future.result(), hpath, job.height_unit, shape_rc=img.shape_rc)
     try:
         hom = None if job.homography is None else np.asarray(job.homography, dtype=np.float64)
-        res = analyse_pits(img.rgb, job.settings, height, homography_px_to_mm=hom, height_unit=job.height_unit)
+        # an 8-bit picture is analysed from its decoded pixels: no float copy of a 24 MP scan (288 MB)
+        pixels = img.rgb_u8 if img.rgb_u8 is not None else img.rgb
+        res = analyse_pits(pixels, job.settings, height, homography_px_to_mm=hom, height_unit=job.height_unit)
     except AnalysisError as exc:
         if exc.path is not None:
             raise
@@ -127,7 +129,7 @@ def _pit_rows(path: Path, job: PitJob, hpath: Path | None, known: str | None, re
             f"the height map shows no depth at the pits (deepest {summary['max_depth_mm'] * 1000:.3g} um); "
             "check --height-unit and that the map is registered to the image", hpath)
     stem = path.stem
-    shown = res.rectified_rgb if res.rectified_rgb is not None else img.rgb
+    shown = res.rectified_rgb if res.rectified_rgb is not None else pixels
     overlay = write_overlay(job.out_dir / f"{stem}_pits.png", shown, res.labels, res.analysed, res.pits,
                             job.settings.px_per_mm)
     hist = size_histogram_figure(res.pits, job.out_dir / f"{stem}_pit_sizes.png", title=f"{path.name}: pit sizes")

@@ -78,14 +78,16 @@ def overlay_image(rgb: np.ndarray, labels: np.ndarray, analysed: np.ndarray, pit
         # nearest-pixel sampling (the centre pixel of each k x k block) of picture, labels and region alike:
         # outlines stay exactly on the picture's pixels, and only one pixel in k*k is read and converted to
         # 8 bits (an area reduction of the whole frame took 60 ms of the job at 24 MP, this takes about 10)
-        small = cv2.convertScaleAbs(np.ascontiguousarray(np.asarray(rgb)[k // 2::k, k // 2::k]), alpha=255.0)
+        picked = np.ascontiguousarray(np.asarray(rgb)[k // 2::k, k // 2::k])
+        small = picked if picked.dtype == np.uint8 else cv2.convertScaleAbs(picked, alpha=255.0)
         lab = np.ascontiguousarray(labels[k // 2::k, k // 2::k])
         an = np.ascontiguousarray(analysed[k // 2::k, k // 2::k])
         size = (small.shape[1], small.shape[0])  # the blocks that have a centre pixel
         scale_xy = 1.0 / k
     else:
         size = (max(1, int(round(w * f))), max(1, int(round(h * f))))
-        small = cv2.resize(np.asarray(rgb, np.float32), size, interpolation=cv2.INTER_LINEAR) if f != 1 else rgb
+        src = rgb if rgb.dtype == np.uint8 else np.asarray(rgb, np.float32)
+        small = cv2.resize(src, size, interpolation=cv2.INTER_LINEAR) if f != 1 else rgb
         lab = cv2.resize(labels, size, interpolation=cv2.INTER_NEAREST) if f != 1 else labels
         an = (cv2.resize(analysed.view(np.uint8), size, interpolation=cv2.INTER_NEAREST) if f != 1
               else analysed.view(np.uint8)).astype(bool)
