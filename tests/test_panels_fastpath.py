@@ -107,3 +107,35 @@ def test_quadratic_least_squares_matches_numpy_lstsq():
     a = np.column_stack([np.ones_like(x), x, y, x * x, x * y, y * y])
     b = rng.normal(size=(5000, 3))
     np.testing.assert_allclose(lstsq_quadratic(a, b), np.linalg.lstsq(a, b, rcond=None)[0], rtol=1e-9, atol=1e-12)
+
+
+def test_eight_bit_tray_gives_the_float_detection_and_rectification():
+    # ``coupon panels`` works an 8-bit photo from its decoded pixels; the reference is the float path on the
+    # same pixels (x / 255): corners, rectified linear light (the exact 256-level sRGB decoding, IEC
+    # 61966-2-1, against the 4096-level table) and QR reading must agree
+    from coupon.segment.panels.detect import find_panels, linearize, read_qr_codes, rectify_panel
+    from coupon.synth.panels import PanelSpec, TraySettings, tray_scene
+
+    specs = [PanelSpec("white", ("general",), qr_text="BW-2-C"), PanelSpec("grey", ("spots",), scribe="line",
+                                                                          creep_mm=1.5)]
+    img, truth = tray_scene(specs, seed=21, settings=TraySettings(image_wh=(1400, 1200), cols=2, tilt_x_deg=8,
+                                                                  tilt_y_deg=-5))
+    u8 = np.clip(np.rint(img * 255), 0, 255).astype(np.uint8)
+    f32 = u8.astype(np.float32) / np.float32(255)
+    np.testing.assert_allclose(linearize(u8), colour.models.eotf_sRGB(u8 / 255.0), atol=1e-6)  # colour-science
+    qa, qb = find_panels(f32), find_panels(u8)
+    assert len(qa) == len(qb) == 2
+    for a, b in zip(qa, qb):
+        assert a.position == b.position
+        # the edge profiles are sampled from rounded 8-bit values (OpenCV's 8-bit remap): a corner may move
+        # by a few hundredths of a pixel (0.07 px on a 500 px side is 0.01 % of the panel's area)
+        np.testing.assert_allclose(b.corners_xy, a.corners_xy, atol=0.1)  # px
+        pa = rectify_panel(f32, a.corners_xy, (75, 150), 10.0)
+        pb = rectify_panel(u8, a.corners_xy, (75, 150), 10.0)
+        assert pb.linear.shape == pa.linear.shape
+        # the float path's 4096-level table errs by up to half a step (1/8190) times the slope of the sRGB
+        # decoding (2.4 / 1.055 = 2.27 at white): 2.8e-4
+        np.testing.assert_allclose(pb.linear, pa.linear, atol=2.8e-4)
+    codes_a = {k: v[0] for k, v in read_qr_codes(f32, qa).items()}
+    codes_b = {k: v[0] for k, v in read_qr_codes(u8, qb).items()}
+    assert codes_b == codes_a == {0: "BW-2-C"}

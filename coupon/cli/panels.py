@@ -142,11 +142,13 @@ def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out
         The image cannot be read, or no panel is found in it.
     """
     img = load_image(path, max_pixels=max_pixels)
-    quads = find_panels(img.rgb)
+    # an 8-bit photo is worked from its decoded pixels: no float copy of the whole tray (144 MB at 12 MP)
+    pixels = img.rgb_u8 if img.rgb_u8 is not None else img.rgb
+    quads = find_panels(pixels)
     if not quads:
         raise AnalysisError("no panel found: nothing stands out from the tray; check that the panels are in "
                             "the frame and differ in colour from the tray", path)
-    qr = read_qr_codes(img.rgb, quads) if settings.qr else {}
+    qr = read_qr_codes(pixels, quads) if settings.qr else {}
     px_scale = profile.scale.px_per_mm if (profile is not None and profile.scale is not None) else None
     inside = [q for q in quads if q.touches is None]
     median_area = float(np.median([q.area_px2 for q in inside])) if len(inside) >= 3 else None
@@ -174,7 +176,7 @@ def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out
             row["status"] = problem
             rows.append(row)
             continue
-        panel = rectify_panel(img.rgb, q.corners_xy, settings.size_mm, settings.px_per_mm)
+        panel = rectify_panel(pixels, q.corners_xy, settings.size_mm, settings.px_per_mm)
         boxes = []
         if i in qr:
             # the QR label is not coating: leave its box (plus 2 mm) out of the rating

@@ -35,8 +35,22 @@ _LUT_LEVELS = 4096
 _DECODE_LUT = cs.srgb_to_linear(np.linspace(0.0, 1.0, _LUT_LEVELS)).astype(np.float32)
 
 
+#: Linear light of every 8-bit sRGB level (IEC 61966-2-1 decoding), float32.
+_DECODE_LUT_U8 = cs.srgb_to_linear(np.arange(256) / 255.0).astype(np.float32)
+
+
+def _float01(rgb: np.ndarray) -> np.ndarray:
+    """8-bit pixels as float32 [0, 1]; float input as it is."""
+    return rgb.astype(np.float32) * np.float32(1.0 / 255.0) if rgb.dtype == np.uint8 else rgb
+
+
 def linearize(rgb: np.ndarray) -> np.ndarray:
-    """sRGB-encoded [0, 1] to linear light [0, 1] through a 4096-level table (float32)."""
+    """sRGB-encoded [0, 1] to linear light [0, 1] through a 4096-level table (float32).
+
+    8-bit pixels (uint8, 0-255) go through the exact table of their 256 levels instead.
+    """
+    if rgb.dtype == np.uint8:
+        return _DECODE_LUT_U8[rgb]
     # one float32 temporary, rounded and clipped in place, then a uint16 index into the table
     t = np.multiply(rgb, np.float32(_LUT_LEVELS - 1), dtype=np.float32)
     np.rint(t, out=t)
@@ -206,8 +220,8 @@ def _refine_quad(rgb: np.ndarray, quad_xy: np.ndarray, reach_px: float) -> np.nd
         t = np.linspace(0.08, 0.92, 40)
         base = a[None, :] + t[:, None] * (b - a)[None, :]
         pts = base[:, None, :] + offsets[None, :, None] * nrm[None, None, :]  # inner (-) to outer (+)
-        prof = cv2.remap(rgb, pts[..., 0].astype(np.float32), pts[..., 1].astype(np.float32),
-                         cv2.INTER_LINEAR, borderMode=cv2.BORDER_REPLICATE)
+        prof = _float01(cv2.remap(rgb, pts[..., 0].astype(np.float32), pts[..., 1].astype(np.float32),
+                                  cv2.INTER_LINEAR, borderMode=cv2.BORDER_REPLICATE))
         k = max(2, len(offsets) // 6)
         inner = np.median(prof[:, :k], axis=1)
         outer = np.median(prof[:, -k:], axis=1)
@@ -263,7 +277,7 @@ def find_panels(rgb: np.ndarray, max_side_px: int = 1000, min_area_frac: float =
 
     Parameters
     ----------
-    rgb : (M, N, 3) ndarray of float32
+    rgb : (M, N, 3) ndarray of float32 (sRGB [0, 1]) or uint8 (as decoded)
         sRGB photo in [0, 1] (package convention).
     max_side_px : int
         Working size of the coarse search.
@@ -280,7 +294,7 @@ def find_panels(rgb: np.ndarray, max_side_px: int = 1000, min_area_frac: float =
     f = min(1.0, max_side_px / max(rows, cols))
     small = cv2.resize(rgb, (max(1, int(round(cols * f))), max(1, int(round(rows * f)))),
                        interpolation=cv2.INTER_AREA) if f < 1 else rgb
-    lab = cv2.cvtColor(np.ascontiguousarray(small, dtype=np.float32), cv2.COLOR_RGB2Lab)
+    lab = cv2.cvtColor(np.ascontiguousarray(_float01(small), dtype=np.float32), cv2.COLOR_RGB2Lab)
     dist = _tray_distance(lab)
     thr = max(10.0, _otsu(dist))
     mask = dist > thr
@@ -425,7 +439,7 @@ def read_qr_codes(rgb: np.ndarray, quads: list[PanelQuad], grow: float = 0.25) -
         x0, y0 = np.maximum(0, np.floor(c.min(axis=0) - grow * span)).astype(int)
         x1, y1 = np.minimum([cols, rows], np.ceil(c.max(axis=0) + grow * span)).astype(int)
         grey = cv2.cvtColor(np.ascontiguousarray(rgb[y0:y1, x0:x1]), cv2.COLOR_RGB2GRAY)
-        u8 = np.clip(np.rint(grey * 255.0), 0, 255).astype(np.uint8)
+        u8 = grey if grey.dtype == np.uint8 else np.clip(np.rint(grey * 255.0), 0, 255).astype(np.uint8)
         if qr_finder_count(u8) < QR_PRECHECK_MIN_FINDERS:
             continue  # no code here: skip the decoder's search (about 0.05 s per panel crop)
         # QR modules can be only a few pixels in a tray photo: upsample small crops
