@@ -213,3 +213,23 @@ def test_series_events_definitions():
                         [7, 8, 9, 10])
     assert ev2["final"]["pattern"] == "acidic centre, basic rim"
     assert ev2["t_rust_first_min"] is None
+
+
+def test_eight_bit_frame_gives_the_float_analysis(model):
+    # ``coupon droplet`` passes an 8-bit frame as decoded; the reference is the float path on the same pixels
+    # (x / 255): only the reduced copy the drop is found on is rounded (OpenCV's 8-bit area means), the
+    # working crop is the float crop exactly, so every measure must agree closely and the truth still holds
+    st = _Static(SPEC, 1)
+    for i in (1, 6):
+        rgb, truth = render_frame(SPEC, i, seed=1, static=st)
+        u8 = np.clip(np.rint(rgb * 255), 0, 255).astype(np.uint8)
+        a = analyse_frame(u8.astype(np.float32) / np.float32(255), model, SPEC.px_per_mm)
+        b = analyse_frame(u8, model, SPEC.px_per_mm)
+        assert a.drop_found and b.drop_found
+        assert b.measures["drop_area_mm2"] == pytest.approx(a.measures["drop_area_mm2"], rel=0.005)
+        assert b.measures["drop_area_mm2"] == pytest.approx(truth["drop_area_mm2"], rel=0.03)
+        for k, v in a.measures.items():
+            if k.endswith("_pct"):
+                assert b.measures[k] == pytest.approx(v, abs=0.5), k  # percentage points
+            elif k.startswith("ph_") and np.isfinite(v):
+                assert b.measures[k] == pytest.approx(v, abs=0.05), k

@@ -81,7 +81,8 @@ def frame_rows(path: Path, job: DropletJob) -> dict:
             f"frame is {img.shape_rc[1]}x{img.shape_rc[0]} px but the series is {ec}x{er} px; a time-lapse "
             "needs one camera set-up (same size and scale) for every frame", path)
     s = job.settings
-    res = analyse_frame(img.rgb, job.model, job.px_per_mm, job.colour, s)
+    # an 8-bit frame is passed as decoded: only the reduced copy and the drop's crop are made float
+    res = analyse_frame(img.rgb_u8 if img.rgb_u8 is not None else img.rgb, job.model, job.px_per_mm, job.colour, s)
     row = {c: np.nan for c in FRAME_COLUMNS}
     row.update({"file": str(path), "capture_time": img.capture_time.isoformat() if img.capture_time else "",
                 "drop_found": res.drop_found, **res.measures, "ph_tiff": "", "ph_png": "",

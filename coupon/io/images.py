@@ -260,6 +260,15 @@ def to_float_rgb(arr: np.ndarray) -> tuple[np.ndarray, int]:
     return rgb, depth
 
 
+def float01(pixels: np.ndarray) -> np.ndarray:
+    """8-bit pixels as float32 in [0, 1], exactly as ``LoadedImage.rgb`` converts them; other input as it is.
+
+    For the jobs that take either type and convert only the part they need (a crop,
+    a reduced copy, a sampled profile).
+    """
+    return pixels.astype(np.float32) * np.float32(1.0 / 255.0) if pixels.dtype == np.uint8 else pixels
+
+
 def to_uint8(rgb: np.ndarray) -> np.ndarray:
     """Float [0, 1] image to uint8 [0, 255], rounding (the one converter for writing pictures)."""
     return np.clip(np.rint(np.asarray(rgb, dtype=np.float32) * 255.0), 0, 255).astype(np.uint8)

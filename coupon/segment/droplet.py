@@ -68,6 +68,7 @@ from coupon.calibrate.colour import ColourCorrection, apply_correction
 from coupon.calibrate.indicator import IndicatorModel
 from coupon.calibrate.scale import check_px_per_mm
 from coupon.errors import AnalysisError
+from coupon.io.images import float01
 
 FIND_SIDE_PX = 512
 #: Radius limits of the centre and rim readings (normalised radius), as the issue defines them.
@@ -411,8 +412,8 @@ def analyse_frame(rgb: np.ndarray, model: IndicatorModel, px_per_mm: float,
 
     Parameters
     ----------
-    rgb : (M, N, 3) ndarray of float32
-        sRGB [0, 1], as loaded (colour correction is applied here).
+    rgb : (M, N, 3) ndarray of float32 or uint8
+        sRGB [0, 1], or 8-bit sRGB as decoded (colour correction is applied here).
     model : IndicatorModel
         Calibrated colour-to-pH path.
     px_per_mm : float
@@ -433,8 +434,8 @@ def analyse_frame(rgb: np.ndarray, model: IndicatorModel, px_per_mm: float,
     h, w = rgb.shape[:2]
 
     # 1. find the drop on a reduced copy
-    small, fx, fy = _reduce_for_find(rgb)
-    small = apply_correction(small, colour)
+    small, fx, fy = _reduce_for_find(rgb)  # 8-bit pixels are reduced as they are (OpenCV rounds the means)
+    small = apply_correction(float01(small), colour)
     sat = saturation(small, 1.0)
     thr, metal_sat = drop_threshold(sat)
     coarse = _clean_blob(sat > thr, max(small.shape[:2]))
@@ -450,7 +451,7 @@ def analyse_frame(rgb: np.ndarray, model: IndicatorModel, px_per_mm: float,
     c0 = max(0, int((cc.min() - pad) / fx))
     c1 = min(w, int(np.ceil((cc.max() + 1 + pad) / fx)))
     diam_px = 2.0 * np.sqrt(coarse.sum() / (np.pi * fx * fy))
-    crop, gx, gy = _resize(rgb[r0:r1, c0:c1], s.work_diameter_px / diam_px)
+    crop, gx, gy = _resize(float01(rgb[r0:r1, c0:c1]), s.work_diameter_px / diam_px)  # only the crop in float
     crop = apply_correction(crop, colour)
     sat_w = saturation(crop, 1.0)
     sr0, sc0 = int(r0 * fy), int(c0 * fx)

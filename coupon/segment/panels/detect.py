@@ -29,6 +29,7 @@ from scipy import ndimage as ndi
 from coupon.calibrate import colourspace as cs
 from coupon.calibrate.scale import ScaleCalibration, quad_area_px2, scale_from_rectangle, warp_to_mm_grid
 from coupon.errors import AnalysisError
+from coupon.io.images import float01
 from coupon.segment.panels.rust import lstsq_quadratic
 
 _LUT_LEVELS = 4096
@@ -37,11 +38,6 @@ _DECODE_LUT = cs.srgb_to_linear(np.linspace(0.0, 1.0, _LUT_LEVELS)).astype(np.fl
 
 #: Linear light of every 8-bit sRGB level (IEC 61966-2-1 decoding), float32.
 _DECODE_LUT_U8 = cs.srgb_to_linear(np.arange(256) / 255.0).astype(np.float32)
-
-
-def _float01(rgb: np.ndarray) -> np.ndarray:
-    """8-bit pixels as float32 [0, 1]; float input as it is."""
-    return rgb.astype(np.float32) * np.float32(1.0 / 255.0) if rgb.dtype == np.uint8 else rgb
 
 
 def linearize(rgb: np.ndarray) -> np.ndarray:
@@ -220,7 +216,7 @@ def _refine_quad(rgb: np.ndarray, quad_xy: np.ndarray, reach_px: float) -> np.nd
         t = np.linspace(0.08, 0.92, 40)
         base = a[None, :] + t[:, None] * (b - a)[None, :]
         pts = base[:, None, :] + offsets[None, :, None] * nrm[None, None, :]  # inner (-) to outer (+)
-        prof = _float01(cv2.remap(rgb, pts[..., 0].astype(np.float32), pts[..., 1].astype(np.float32),
+        prof = float01(cv2.remap(rgb, pts[..., 0].astype(np.float32), pts[..., 1].astype(np.float32),
                                   cv2.INTER_LINEAR, borderMode=cv2.BORDER_REPLICATE))
         k = max(2, len(offsets) // 6)
         inner = np.median(prof[:, :k], axis=1)
@@ -294,7 +290,7 @@ def find_panels(rgb: np.ndarray, max_side_px: int = 1000, min_area_frac: float =
     f = min(1.0, max_side_px / max(rows, cols))
     small = cv2.resize(rgb, (max(1, int(round(cols * f))), max(1, int(round(rows * f)))),
                        interpolation=cv2.INTER_AREA) if f < 1 else rgb
-    lab = cv2.cvtColor(np.ascontiguousarray(_float01(small), dtype=np.float32), cv2.COLOR_RGB2Lab)
+    lab = cv2.cvtColor(np.ascontiguousarray(float01(small), dtype=np.float32), cv2.COLOR_RGB2Lab)
     dist = _tray_distance(lab)
     thr = max(10.0, _otsu(dist))
     mask = dist > thr
