@@ -130,3 +130,17 @@ def test_export_parquet_round_trips_every_table(tmp_path):
             np.testing.assert_allclose(pq[col].to_numpy(float), ref[col].to_numpy(float), rtol=5e-6, atol=1e-300,
                                        equal_nan=True, err_msg=f"{c.stem}.{col}")
     assert not list((tmp_path / "pq").glob("*.tmp*"))  # atomic writes leave no temporary files
+
+
+def test_parquet_columns_keep_identifiers_and_numbers():
+    # Parquet is typed: text that reads as a number becomes one (a grade), but an identifier with a leading
+    # zero must not lose it, and text stays text
+    from coupon.cli.campaign import _parquet_ready
+
+    df = pd.DataFrame({"panel_id": ["007", "12"], "rust_grade": ["10", "8"], "position": ["R1C1", "R1C2"],
+                       "empty": [None, None], "mixed": [3, "a"]})
+    out = _parquet_ready(df)
+    assert out["panel_id"].tolist() == ["007", "12"]
+    assert pd.api.types.is_numeric_dtype(out["rust_grade"]) and out["rust_grade"].tolist() == [10, 8]
+    assert out["position"].tolist() == ["R1C1", "R1C2"] and out["mixed"].tolist() == ["3", "a"]
+    assert out["empty"].isna().all()

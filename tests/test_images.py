@@ -51,6 +51,23 @@ def test_16bit_precision_is_kept(tmp_path, suffix):
     np.testing.assert_array_equal(np.rint(img.rgb * 65535).astype(np.uint16), ramp)
 
 
+def test_pixels_kept_as_decoded_and_one_float_copy_at_most(tmp_path):
+    # 8-bit: the decoded pixels are kept, the float copy made once on first use and equal to pixels / 255
+    p8 = tmp_path / "eight.png"
+    cv2.imwrite(str(p8), cv2.cvtColor(_u8(GRADIENT), cv2.COLOR_RGB2BGR))
+    img = load_image(p8)
+    assert img.rgb_u8 is img.pixels and img.pixels.dtype == np.uint8
+    np.testing.assert_array_equal(img.pixels, _u8(GRADIENT))
+    assert "rgb" not in vars(img)  # not made until asked for
+    assert img.rgb is img.rgb  # made once
+    np.testing.assert_allclose(img.rgb, img.pixels / 255.0, rtol=1e-6, atol=0)
+    # 16-bit: converted at load; the float array is the only copy
+    p16 = tmp_path / "deep.png"
+    cv2.imwrite(str(p16), (np.arange(30 * 40 * 3).reshape(30, 40, 3) * 17 % 65536).astype(np.uint16))
+    deep = load_image(p16)
+    assert deep.rgb_u8 is None and deep.rgb is deep.pixels and deep.pixels.dtype == np.float32
+
+
 def test_greyscale_is_promoted_and_alpha_dropped(tmp_path):
     grey = tmp_path / "grey.png"
     cv2.imwrite(str(grey), _u8(GRADIENT[:, :, 0]))

@@ -96,6 +96,13 @@ def test_oblique_photo_is_rectified_with_the_homography(tilted):
     assert np.percentile(d, 90) < 0.05  # mm, on the calibrated plane
     # without rectification the analysed area is off by the perspective
     assert abs(plain.analysed_area_mm2 / truth["analysed_area_mm2"] - 1) > 0.04
+    # the 8-bit pixels as decoded (what ``coupon pits`` passes) are rectified like their float copy
+    u8 = np.clip(np.rint(rgb * 255), 0, 255).astype(np.uint8)
+    a = analyse_pits(u8.astype(np.float32) / np.float32(255), PitSettings(px_per_mm=s), homography_px_to_mm=hom)
+    b = analyse_pits(u8, PitSettings(px_per_mm=s), homography_px_to_mm=hom)
+    assert b.rectified_rgb.dtype == np.float32 and b.rectified_rgb.max() <= 1.0
+    assert len(b.pits) == len(a.pits)
+    assert b.analysed_area_mm2 == pytest.approx(a.analysed_area_mm2, rel=1e-6)
 
 
 def test_too_oblique_refused_and_square_on_left_alone():

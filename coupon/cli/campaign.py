@@ -152,7 +152,13 @@ def _parquet_ready(df: pd.DataFrame) -> pd.DataFrame:
     for c in df.columns:
         s = df[c]
         if s.dtype == object or pd.api.types.is_string_dtype(s):  # pandas 3 reads SQLite text as "str"
+            text = s.map(lambda v: isinstance(v, str))
+            # text that reads as a number becomes one, unless that would lose what it says: identifiers
+            # with a leading zero ("007") stay text, and so does a column with no value at all
+            keep_text = bool(s[text].str.fullmatch(r"\s*[+-]?0\d.*").any()) or not s.notna().any()
             try:
+                if keep_text:
+                    raise ValueError
                 s = pd.to_numeric(s)
             except (TypeError, ValueError):
                 s = s.map(lambda v: None if v is None or (isinstance(v, float) and v != v) else str(v))

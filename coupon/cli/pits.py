@@ -98,15 +98,21 @@ def pit_rows_for_image(path: Path, job: PitJob) -> dict:
     """
     hpath = job.height_path(path)
     known = dict(job.height_sha256).get(str(hpath)) if hpath is not None else None
-    with ThreadPoolExecutor(max_workers=1) as helpers:
-        # one helper thread on the second core (OpenCV's decoders and hashlib release the GIL), in turn: the
-        # height map is read while the image decodes, then hashed while the image is analysed
+    # one helper thread on the second core (OpenCV's decoders and hashlib release the GIL), in turn: the
+    # height map is read while the image decodes, then hashed while the image is analysed
+    helpers = ThreadPoolExecutor(max_workers=1)
+    try:
         read_future = hash_future = None
         if hpath is not None:
             read_future = helpers.submit(read_height_map, hpath, job.height_unit)
             if known is None:
                 hash_future = helpers.submit(file_sha256, hpath)
-        return _pit_rows(path, job, hpath, known, read_future, hash_future)
+        rows = _pit_rows(path, job, hpath, known, read_future, hash_future)
+    except BaseException:
+        helpers.shutdown(wait=False, cancel_futures=True)  # a failed image does not wait for the map's hash
+        raise
+    helpers.shutdown(wait=True)
+    return rows
 
 
 def _pit_rows(path: Path, job: PitJob, hpath: Path | None, known: str | None, read_future, hash_future) -> dict:

@@ -56,8 +56,10 @@ class LoadedImage:
     ----------
     path : Path
         The file it came from.
-    pixels : (M, N, 3) ndarray of uint8, uint16 or float32
-        The decoded pixels, RGB order, orientation applied, in the file's own type.
+    pixels : (M, N, 3) ndarray of uint8 or float32
+        The decoded pixels, RGB order, orientation applied: uint8 as decoded for an
+        8-bit file, float32 sRGB in [0, 1] for a 16-bit or float file (then the same
+        array as ``rgb``).
     rgb : (M, N, 3) ndarray of float32 (property)
         sRGB-encoded colour in [0, 1], the package convention: converted from
         ``pixels`` at the first access and kept (a job that can work on the 8-bit
@@ -82,7 +84,7 @@ class LoadedImage:
     @cached_property
     def rgb(self) -> np.ndarray:
         """Float32 sRGB in [0, 1] (see the class notes)."""
-        return to_float_rgb(self.pixels)[0]
+        return self.pixels if self.pixels.dtype == np.float32 else to_float_rgb(self.pixels)[0]
 
     @property
     def rgb_u8(self) -> np.ndarray | None:
@@ -316,6 +318,8 @@ def load_image(path: str | os.PathLike, max_pixels: int = DEFAULT_MAX_PIXELS) ->
         notes.append(f"EXIF orientation {orientation} applied")
     try:
         pixels, depth = to_rgb3(decoded)
+        if pixels.dtype != np.uint8:
+            pixels = to_float_rgb(pixels)[0]  # 16-bit and float files: the float copy is the only copy
     except ValueError as exc:
         raise ImageLoadError(str(exc), path) from None
     return LoadedImage(

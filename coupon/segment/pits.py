@@ -42,6 +42,7 @@ from skimage.segmentation import watershed
 
 from coupon.calibrate.scale import check_px_per_mm, warp_to_mm_grid
 from coupon.errors import AnalysisError
+from coupon.io.images import float01
 from coupon.io.heightmap import PLAUSIBLE_SPREAD_MM
 
 #: How pits look: dark openings, or openings outlined by a bright lip (low-angle or ring light).
@@ -235,7 +236,7 @@ def rectify_view(rgb: np.ndarray, homography_px_to_mm: np.ndarray, px_per_mm: fl
         raise AnalysisError(
             f"rectifying with the profile's homography would give a {grid_px / 1e6:.0f}-megapixel grid for a "
             f"{h * w / 1e6:.0f}-megapixel picture; the profile was calibrated for another camera set-up")
-    out = warp_to_mm_grid(np.asarray(rgb, np.float32), homography_px_to_mm, size_mm, px_per_mm, (x0, y0))
+    out = warp_to_mm_grid(np.asarray(float01(rgb), np.float32), homography_px_to_mm, size_mm, px_per_mm, (x0, y0))
     hm = None
     if height_mm is not None:
         hm = warp_to_mm_grid(np.asarray(height_mm, np.float32), homography_px_to_mm, size_mm, px_per_mm, (x0, y0))
@@ -877,9 +878,7 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
     s = settings.px_per_mm
     rectified = None
     if homography_px_to_mm is not None:
-        if rgb.dtype == np.uint8:
-            rgb = rgb.astype(np.float32) * np.float32(1.0 / 255.0)  # the warp works in float
-        rect = rectify_view(rgb, homography_px_to_mm, s, height_mm)
+        rect = rectify_view(rgb, homography_px_to_mm, s, height_mm)  # None when square-on: no float copy
         if rect is not None:
             rgb, height_mm, rectified = rect
             grey = grey_level(rgb)
