@@ -84,7 +84,7 @@ class LoadedImage:
     @cached_property
     def rgb(self) -> np.ndarray:
         """Float32 sRGB in [0, 1] (see the class notes)."""
-        return self.pixels if self.pixels.dtype == np.float32 else to_float_rgb(self.pixels)[0]
+        return float01(self.pixels)  # pixels are uint8 or already float32 (see load_image)
 
     @property
     def rgb_u8(self) -> np.ndarray | None:
@@ -268,7 +268,9 @@ def float01(pixels: np.ndarray) -> np.ndarray:
     For the jobs that take either type and convert only the part they need (a crop,
     a reduced copy, a sampled profile).
     """
-    return pixels.astype(np.float32) * np.float32(1.0 / 255.0) if pixels.dtype == np.uint8 else pixels
+    if pixels.dtype != np.uint8:
+        return pixels
+    return np.multiply(pixels, np.float32(1.0 / 255.0), dtype=np.float32)  # one new array, no uint8->float temporary
 
 
 def to_uint8(rgb: np.ndarray) -> np.ndarray:

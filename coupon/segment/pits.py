@@ -257,8 +257,7 @@ def grey_level(rgb: np.ndarray) -> np.ndarray:
     noise of a scan.
     """
     if rgb.dtype == np.uint8:
-        g8 = cv2.cvtColor(rgb, cv2.COLOR_RGB2GRAY)
-        return np.multiply(g8, np.float32(1.0 / 255.0), out=np.empty(g8.shape, np.float32))  # one float array
+        return float01(cv2.cvtColor(rgb, cv2.COLOR_RGB2GRAY))
     return cv2.cvtColor(np.asarray(rgb, dtype=np.float32), cv2.COLOR_RGB2GRAY)
 
 
