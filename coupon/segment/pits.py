@@ -8,9 +8,11 @@ Pipeline of :func:`analyse_pits` (each step a function of its own):
    resolution); or the whole frame when asked.  :func:`analysed_region`
    leaves out the edge band (Euclidean distance to the region border).
 3. :func:`flatten` divides the grey level by a large-scale background estimate
-   (a median over ``flatten_mm``, larger than any pit, computed on a reduced
-   copy), so gradients of light and brushing read as contrast near 0 and pits
-   as negative contrast ("dark" pits) or rims as positive ("bright-rim").
+   (:func:`background_map`: a median over ``flatten_mm``, larger than any pit,
+   computed on a reduced copy), so gradients of light and brushing read as
+   contrast near 0 and pits as negative contrast ("dark" pits) or rims as
+   positive ("bright-rim").  The analysis itself does this strip by strip
+   (:func:`candidate_pixels`) and keeps only the pixels that may be pits.
 4. :func:`segment_pits` thresholds the contrast (at least ``min_contrast`` and
    5 noise sigmas), keeps each object's pixels darker than half its own
    median contrast (so the outline sits half-way down the pit's edge, whatever
@@ -22,7 +24,8 @@ Pipeline of :func:`analyse_pits` (each step a function of its own):
    (:func:`surface_reference`).
 
 Arrays: ``rgb`` (M, N, 3) float32 sRGB in [0, 1], or the 8-bit pixels as decoded (uint8, 0-255:
-``coupon pits`` passes these and never makes a float copy of the scan); masks (M, N) bool; labels
+``coupon pits`` passes these; the analysis keeps their grey level in 8 bits and makes no
+full-frame float array, see :data:`STRIP_ROWS`); masks (M, N) bool; labels
 (M, N) int32 with 0 for background; ``height_mm`` (M, N) float32 in mm, NaN for
 missing data, registered pixel for pixel to the image.  Positions in mm are
 measured from the image's top-left pixel corner: x along columns, y down rows.
@@ -261,6 +264,19 @@ def grey_level(rgb: np.ndarray) -> np.ndarray:
     return cv2.cvtColor(np.asarray(rgb, dtype=np.float32), cv2.COLOR_RGB2GRAY)
 
 
+def grey_pixels(rgb: np.ndarray) -> np.ndarray:
+    """Luma in the pixels' own type: uint8 (0-255) from 8-bit pixels, float32 in [0, 1] otherwise.
+
+    The analysis keeps the full-size grey level of an 8-bit picture in 8 bits
+    (24 MB at 24 MP instead of 96 MB) and converts to float only the strip
+    or reduced copy it works on; :func:`grey_level` is the float version.
+    """
+    out = np.empty(rgb.shape[:2], np.uint8 if rgb.dtype == np.uint8 else np.float32)  # see label_components
+    if rgb.dtype == np.uint8:
+        return cv2.cvtColor(rgb, cv2.COLOR_RGB2GRAY, dst=out)
+    return cv2.cvtColor(np.asarray(rgb, dtype=np.float32), cv2.COLOR_RGB2GRAY, dst=out)
+
+
 def _clip_level(rgb: np.ndarray):
     """The clipping level :data:`_CLIPPED` in the pixels' own type (254 of 255 for 8-bit)."""
     return np.uint8(np.ceil(_CLIPPED * 255.0)) if rgb.dtype == np.uint8 else np.float32(_CLIPPED)
@@ -289,7 +305,7 @@ def check_exposure(rgb: np.ndarray, grey: np.ndarray) -> None:
         Blank (one grey level), nearly black, or more than a quarter clipped at white.
     """
     step = max(1, int(np.sqrt(grey.size / 2.5e5)))  # a quarter of a million pixels decide this
-    g = grey[::step, ::step]
+    g = float01(np.ascontiguousarray(grey[::step, ::step]))  # an 8-bit grey level (grey_pixels) in [0, 1]
     p1, p95, p99 = np.percentile(g, [1, 95, 99])  # one call: one sort of the sample
     spread = float(p99 - p1)
     if spread < 0.02:
@@ -337,6 +353,75 @@ def _signed_distance(mask: np.ndarray) -> np.ndarray:
     return sd[1:-1, 1:-1].astype(np.float32)
 
 
+#: Rows per strip of the full-resolution passes (region masks, candidate pixels).  A strip's float
+#: arrays (1.5 MB each at 6000 px wide) stay near a core's 1 MB L2 cache (256-row strips ran 40 %
+#: slower), where full-frame float32 arrays (96 MB each at 24 MP) cost memory traffic and, on first
+#: touch, page faults.
+STRIP_ROWS = 64
+
+
+def _strips(h: int, rows: int = STRIP_ROWS):
+    """(first, end) row ranges covering 0..h."""
+    return [(r0, min(h, r0 + rows)) for r0 in range(0, h, rows)]
+
+
+class RowUpsampler:
+    """Bilinear enlargement of a reduced map to ``shape``, one strip of rows at a time.
+
+    The sampling is OpenCV's ``resize`` with ``INTER_LINEAR`` (pixel centres
+    aligned, the border replicated): the map is first enlarged along its rows
+    (a reduced number of rows, full width), then each strip interpolates
+    between two of those rows.  ``rows(r0, r1)`` equals rows r0..r1 of the
+    full-size enlargement (tested against ``cv2.resize``) without making it.
+    """
+
+    def __init__(self, small: np.ndarray, shape: tuple[int, int]):
+        h, w = shape
+        small = np.ascontiguousarray(small, dtype=np.float32)
+        n = small.shape[0]
+        self.wide = (small if small.shape[1] == w
+                     else cv2.resize(small, (w, n), interpolation=cv2.INTER_LINEAR))
+        y = np.clip((np.arange(h) + 0.5) * (n / h) - 0.5, 0, n - 1)
+        self.i0 = np.minimum(np.floor(y).astype(np.intp), max(n - 2, 0))
+        self.i1 = np.minimum(self.i0 + 1, n - 1)
+        self.a = (y - self.i0).astype(np.float32)[:, None]
+
+    def rows(self, r0: int, r1: int, out: np.ndarray | None = None, cols: slice = slice(None)) -> np.ndarray:
+        """Rows r0..r1 (and ``cols``) of the enlargement, into ``out`` (float32) when given."""
+        # plain row indexing (numpy copies whole rows): several times faster than np.take with out=
+        lo = self.wide[self.i0[r0:r1], cols]
+        out = np.subtract(self.wide[self.i1[r0:r1], cols], lo, out=out)
+        out *= self.a[r0:r1]
+        out += lo
+        return out
+
+    def bounds(self, r0: int, r1: int) -> tuple[np.ndarray, np.ndarray]:
+        """Per column, the smallest and largest value of rows r0..r1 (those of the wide rows they interpolate)."""
+        block = self.wide[self.i0[r0]:self.i1[r1 - 1] + 1]
+        return block.min(axis=0), block.max(axis=0)
+
+    def greater(self, threshold: float, out: np.ndarray) -> np.ndarray:
+        """``enlargement > threshold`` as a bool mask written into ``out``, computed only where it is in doubt.
+
+        A strip's values lie between the smallest and largest of the wide rows it
+        interpolates; columns where both are on one side of the threshold are filled
+        at once, the others (about the outline) are interpolated.  Equal to
+        thresholding the full enlargement.
+        """
+        t = np.float32(threshold)
+        for r0, r1 in _strips(out.shape[0]):
+            lo, hi = self.bounds(r0, r1)
+            above = lo > t
+            doubt = (hi > t) & ~above
+            o = out[r0:r1]
+            o[...] = above
+            if doubt.any():
+                edges = np.flatnonzero(np.diff(np.concatenate([[0], doubt.view(np.int8), [0]])))
+                for c0, c1 in zip(edges[::2], edges[1::2]):
+                    np.greater(self.rows(r0, r1, cols=slice(c0, c1)), t, out=o[:, c0:c1])
+        return out
+
+
 @dataclass(frozen=True)
 class Region:
     """Where to look for pits.
@@ -380,7 +465,7 @@ def find_region(grey: np.ndarray, edge_px: float, whole_frame: bool = False) -> 
         analysed = (rows[:, None] > edge_px) & (cols[None, :] > edge_px)
         return Region(np.ones((h, w), bool), analysed, "whole frame")
     factor = int(np.ceil(max(1.0, max(h, w) / _REDUCED_SIDE_PX) - 1e-9))
-    small = cv2.GaussianBlur(_reduce(grey, factor), (0, 0), 1.5)
+    small = cv2.GaussianBlur(float01(_reduce(grey, factor)), (0, 0), 1.5)
     t = float(threshold_otsu(small))
     lo, hi = small[small <= t], small[small > t]
     if lo.size == 0 or hi.size == 0:
@@ -404,8 +489,11 @@ def find_region(grey: np.ndarray, edge_px: float, whole_frame: bool = False) -> 
     hull = cv2.convexHull(np.concatenate(contours))
     small_mask = cv2.fillPoly(np.zeros(small_mask.shape, np.uint8), [hull], 1).astype(bool)
     scale = 0.5 * (w / small.shape[1] + h / small.shape[0])  # full-size px per reduced px
-    sd = cv2.resize(_signed_distance(small_mask) * np.float32(scale), (w, h), interpolation=cv2.INTER_LINEAR)
-    return Region(sd > 0, sd > max(edge_px, 0.5), "coupon found against the background")
+    up = RowUpsampler(_signed_distance(small_mask) * np.float32(scale), (h, w))
+    # the full-size signed distance is interpolated only about the outlines, one strip at a time
+    coupon = up.greater(0.0, np.empty((h, w), bool))
+    analysed = up.greater(max(edge_px, 0.5), np.empty((h, w), bool))
+    return Region(coupon, analysed, "coupon found against the background")
 
 
 def region_perimeter_px(mask: np.ndarray) -> float:
@@ -417,17 +505,17 @@ def region_perimeter_px(mask: np.ndarray) -> float:
 
 # -- 3. flattening ---------------------------------------------------------------
 
-def background_level(grey: np.ndarray, region: np.ndarray, window_px: float, gain: float = 1.0) -> np.ndarray:
-    """Large-scale surface level: a median over ``window_px``, blind to objects smaller than half of it.
+def background_map(grey: np.ndarray, region: np.ndarray, window_px: float) -> np.ndarray:
+    """Large-scale surface level on a reduced grid: a median over ``window_px``, blind to objects
+    smaller than half of it (float32 in [0, 1], never below 1e-3).
 
     Computed on a copy reduced by an integer factor so the window is 31 to 61
     pixels (the odd size nearest to ``window_px`` over the factor); outside the
-    region the nearest inside value is copied so the background does not leak in.  The
-    result (times ``gain``, applied on the reduced copy) is interpolated to full
-    size and never below 1e-3 (a divisor).
+    region the nearest inside value is copied so the background does not leak in.
+    :class:`RowUpsampler` (or :func:`background_level`) brings it to full size.
     """
     factor = max(1, int(window_px // 31))
-    g = _reduce(grey, factor)
+    g = float01(_reduce(grey, factor))
     cover = _reduce(region.view(np.uint8), factor)  # 0/1 averaged: 1 means fully inside
     inside = cover >= 1
     if not inside.any():
@@ -440,9 +528,13 @@ def background_level(grey: np.ndarray, region: np.ndarray, window_px: float, gai
         ksize = max(3, 2 * (min(g.shape) // 2) - 1)
     g8 = np.clip(np.rint(g * 255.0), 0, 255).astype(np.uint8)  # OpenCV's large medians are 8-bit only
     med = cv2.medianBlur(g8, ksize).astype(np.float32) / 255.0
-    med = np.maximum(cv2.GaussianBlur(med, (0, 0), 2.0), 1e-3) * np.float32(gain)
+    return np.maximum(cv2.GaussianBlur(med, (0, 0), 2.0), 1e-3)
+
+
+def background_level(grey: np.ndarray, region: np.ndarray, window_px: float) -> np.ndarray:
+    """:func:`background_map` enlarged to the full size of ``grey`` (bilinear), float32."""
     h, w = grey.shape
-    return cv2.resize(med, (w, h), interpolation=cv2.INTER_LINEAR)
+    return cv2.resize(background_map(grey, region, window_px), (w, h), interpolation=cv2.INTER_LINEAR)
 
 
 def smooth_grey(grey: np.ndarray, smooth_px: float = 0.7) -> np.ndarray:
@@ -457,11 +549,101 @@ def flatten(grey: np.ndarray, region: np.ndarray, window_px: float, smooth_px: f
     smoothed grey level with the background times (1 - threshold) and computes
     the contrast on the candidate pixels only (:func:`segment_pits`).
     """
-    g = smooth_grey(grey, smooth_px)
+    g = smooth_grey(float01(grey), smooth_px)
     np.divide(g, background_level(grey, region, window_px), out=g)
     g -= 1.0
     np.copyto(g, 0.0, where=~region)
     return g
+
+
+@dataclass(frozen=True)
+class Candidates:
+    """Pixels that may belong to a pit, from :func:`candidate_pixels`.
+
+    Attributes
+    ----------
+    idx : (K,) ndarray of int64
+        Flat indices (row-major, increasing) of the pixels whose pit-likeness is at least the threshold.
+    strength : (K,) ndarray of float32
+        Their pit-likeness: relative darkness ``1 - smooth / background`` for dark pits,
+        relative brightness ``smooth / background - 1`` for bright-rimmed ones.
+    noise_sigma : float
+        Robust sigma (1.4826 MAD) of the contrast over a regular sample of the analysed region.
+    shape : tuple
+        (rows, cols) of the picture.
+    """
+
+    idx: np.ndarray = field(repr=False)
+    strength: np.ndarray = field(repr=False)
+    noise_sigma: float
+    shape: tuple[int, int]
+
+    def above(self, threshold: float) -> "Candidates":
+        keep = self.strength >= np.float32(threshold)
+        if keep.all():
+            return self
+        return Candidates(self.idx[keep], self.strength[keep], self.noise_sigma, self.shape)
+
+
+def candidate_pixels(grey: np.ndarray, background: np.ndarray, coupon: np.ndarray, analysed: np.ndarray,
+                     look: str, min_contrast: float, smooth_px: float = 0.7,
+                     noise_samples: float = 2.5e5) -> Candidates:
+    """The one full-resolution pass of the segmentation, strip by strip (:data:`STRIP_ROWS`).
+
+    For each strip the grey level (``grey_pixels``: 8-bit or float) is
+    smoothed (the Gaussian of :func:`smooth_grey`, with two rows of real
+    neighbours above and below), divided by the enlarged ``background`` (a :func:`background_map`),
+    and the pixels of the coupon whose pit-likeness reaches ``min_contrast``
+    are listed with it; a regular sample of the analysed region's contrast (about
+    ``noise_samples`` points, every n-th row and column of the frame) gives the
+    noise.  No full-frame float array is made.
+    """
+    h, w = grey.shape
+    dark = look == "dark"
+    tmin = np.float32(min_contrast)
+    # the threshold folded into the background (interpolation is linear): a pixel is a candidate when
+    # smooth <= (1 - t) background (dark) or smooth >= (1 + t) background (bright rim); the contrast
+    # itself is divided out at the candidates and the noise sample only
+    gain = np.float32(1.0 - min_contrast if dark else 1.0 + min_contrast)
+    up = RowUpsampler(np.asarray(background, np.float32) * gain, (h, w))
+    nstep = max(1, int(np.sqrt(h * w / noise_samples)))
+    halo = 2  # the 5 x 5 Gaussian reads two rows either side
+    # smooth_grey's Gaussian as one separable filter straight from the 8-bit grey level to float (the
+    # 1/255 scaling folded into the row kernel): no float copy of the strip first
+    kernel = cv2.getGaussianKernel(5, smooth_px, cv2.CV_32F) if smooth_px > 0 else np.array([[1.0]], np.float32)
+    kx = kernel * np.float32(1.0 / 255.0) if grey.dtype == np.uint8 else kernel
+    src = grey if grey.dtype == np.uint8 else np.asarray(grey, np.float32)
+    gbuf = np.empty((STRIP_ROWS + 2 * halo, w), np.float32)
+    lbuf = np.empty((STRIP_ROWS, w), np.float32)
+    mbuf = np.empty((STRIP_ROWS, w), bool)
+    test = np.less_equal if dark else np.greater_equal
+    idx, vals, sample = [], [], []
+    for r0, r1 in _strips(h):
+        a0, a1 = max(0, r0 - halo), min(h, r1 + halo)
+        g = cv2.sepFilter2D(src[a0:a1], cv2.CV_32F, kx, kernel, dst=gbuf[:a1 - a0])[r0 - a0:r1 - a0]
+        limit = up.rows(r0, r1, lbuf[:r1 - r0])
+        # the noise sample: every nstep-th row and column of the frame inside the analysed region
+        first = (-r0) % nstep
+        on = analysed[r0:r1][first::nstep, ::nstep]
+        sample.append(g[first::nstep, ::nstep][on] / limit[first::nstep, ::nstep][on])
+        m = test(g, limit, out=mbuf[:r1 - r0])
+        m &= coupon[r0:r1]
+        k = np.flatnonzero(m)
+        vals.append(g.ravel()[k] / limit.ravel()[k])
+        k += r0 * w
+        idx.append(k)
+    # smooth / limit = (smooth / background) / gain: the pit-likeness and the contrast sample
+    vals = np.concatenate(vals)
+    vals *= -gain if dark else gain
+    vals += np.float32(1.0) if dark else np.float32(-1.0)
+    sample = np.concatenate(sample) * gain - np.float32(1.0)
+    noise = 1.4826 * float(np.median(np.abs(sample - np.median(sample)))) if sample.size else 0.0
+    # the candidates were found by a product, their strength by a quotient: keep the two consistent
+    keep = vals >= tmin
+    idx = np.concatenate(idx)
+    if not keep.all():
+        idx, vals = idx[keep], vals[keep]
+    return Candidates(idx, vals, noise, (h, w))
 
 
 # -- 4. segmentation -------------------------------------------------------------
@@ -477,8 +659,14 @@ def fill_holes(mask: np.ndarray) -> np.ndarray:
 
 def label_components(mask: np.ndarray) -> tuple[int, np.ndarray]:
     """8-connected components (OpenCV); returns (count, labels int32)."""
-    m = mask.view(np.uint8) if mask.dtype == bool and mask.flags.c_contiguous else mask.astype(np.uint8)
-    n, lab = cv2.connectedComponents(m, connectivity=8, ltype=cv2.CV_32S)  # a bool mask is read as it is
+    if mask.dtype == np.uint8 and mask.flags.c_contiguous:
+        m = mask
+    else:
+        m = mask.view(np.uint8) if mask.dtype == bool and mask.flags.c_contiguous else mask.astype(np.uint8)
+    # the labels array comes from numpy, which asks the kernel for huge pages for large arrays: on first
+    # touch an array OpenCV allocates itself faulted in 4 kB pages, 20 to 80 ms for 96 MB at 24 MP here
+    lab = np.empty(m.shape, np.int32)
+    n, lab = cv2.connectedComponents(m, labels=lab, connectivity=8, ltype=cv2.CV_32S)  # a bool mask is read as it is
     return n - 1, lab
 
 
@@ -507,6 +695,36 @@ def _basin_saddles(basins: np.ndarray, dist: np.ndarray) -> dict[tuple[int, int]
     return {(int(k // n1), int(k % n1)): float(v) for k, v in zip(uk, best)}
 
 
+#: Above this many pixels :func:`h_maxima_small` hands over to scikit-image: the iterations of the
+#: dilation grow with the object's width, their cost with its area.
+SMALL_RECONSTRUCTION_PX = 40_000
+
+
+def h_maxima_small(image: np.ndarray, h: float) -> np.ndarray:
+    """The h-maxima of a small float image (bool), as scikit-image's ``h_maxima``.
+
+    The reconstruction by dilation of ``image - h`` under ``image`` is done by
+    iterated 3 x 3 dilation (OpenCV) until it no longer changes: on the few
+    thousand pixels of one object this is 2 to 3 times faster than the sorting
+    algorithm of ``skimage.morphology.reconstruction`` (tested equal to it).
+    Like scikit-image, ``h`` is lowered by float rounding (2 float32 resolutions
+    of each value), so a maximum exactly ``h`` high counts.
+    """
+    img = np.ascontiguousarray(image, dtype=np.float32)
+    if img.size == 0 or h > float(img.max() - img.min()):
+        return np.zeros(img.shape, bool)
+    if img.size > SMALL_RECONSTRUCTION_PX:
+        return h_maxima(img, h).astype(bool)
+    rec = img - np.float32(h) - np.float32(2e-6) * np.abs(img)
+    kernel = np.ones((3, 3), np.uint8)
+    while True:
+        nxt = np.minimum(cv2.dilate(rec, kernel), img)
+        if np.array_equal(nxt, rec):
+            break
+        rec = nxt
+    return (img - rec) >= np.float32(h)
+
+
 def _split_object(obj: np.ndarray, h_px: float = 0.5, relative: float = SPLIT_RELATIVE_DYNAMIC) -> np.ndarray | None:
     """Watershed split of one object's mask; None when it holds one pit only.
 
@@ -518,12 +736,12 @@ def _split_object(obj: np.ndarray, h_px: float = 0.5, relative: float = SPLIT_RE
     threshold relative to the largest pit of the object missed.
     """
     dist = cv2.distanceTransform(np.pad(obj.view(np.uint8), 1), cv2.DIST_L2, cv2.DIST_MASK_PRECISE)[1:-1, 1:-1]
-    peaks = h_maxima(dist, h_px)
+    peaks = h_maxima_small(dist, h_px)
     markers, n = ndi.label(peaks, structure=np.ones((3, 3)))
     if n <= 1:
         return None
     basins = watershed(-dist, markers, mask=obj)
-    peak = np.zeros(n + 1)
+    peak = np.zeros(n + 1, np.float32)  # the dtype of dist: numpy's fast ufunc.at path
     np.maximum.at(peak, basins[obj], dist[obj])
     saddle = _basin_saddles(basins, dist)
     parent = np.arange(n + 1)
@@ -556,30 +774,47 @@ def _split_object(obj: np.ndarray, h_px: float = 0.5, relative: float = SPLIT_RE
     return dense.astype(np.int32)[basins]
 
 
-def segment_pits(smooth: np.ndarray, background: np.ndarray, coupon: np.ndarray, analysed: np.ndarray,
-                 settings: PitSettings, noise_sigma: float) -> tuple[np.ndarray, dict, tuple[np.ndarray, np.ndarray]]:
+#: A pit whose pixel moments are those of a disc: axis ratio at most this, and ...
+SPLIT_MAX_ASPECT = 1.15
+#: ... area at least this fraction of the ellipse with its moment axes (pi/4 major minor).  A pixel disc
+#: of radius 3.5 px or more keeps within both (axis ratio at most 1.11, fill 0.997 or more); a tilted
+#: ellipse or a pair of touching pits does not.  Moments miss a small pit on the side of a much larger
+#: one (radius 3 px on 25 px changes them by 1 %): segment_pits offers those by their bounding box.
+SPLIT_MIN_FILL = 0.985
+
+
+def plain_disc(area: np.ndarray, major: np.ndarray, minor: np.ndarray) -> np.ndarray:
+    """Objects whose pixel moments are those of one round pit (:data:`SPLIT_MAX_ASPECT`, :data:`SPLIT_MIN_FILL`)."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        fill = area / (0.25 * np.pi * major * minor)
+        return (major <= SPLIT_MAX_ASPECT * minor) & (fill >= SPLIT_MIN_FILL)
+
+
+def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, settings: PitSettings
+                 ) -> tuple[np.ndarray, dict, tuple[np.ndarray, np.ndarray], np.ndarray]:
     """Label the counted pits (int32, ids not consecutive) and say what was dropped.
 
-    The contrast is ``smooth / background - 1``.  ``background`` is overwritten
-    (scaled by the threshold) to save a full-frame array.  Returns the labels,
-    the details and the pixel list of the labelled pixels: (flat indices, label).
+    From the candidate pixels (:func:`candidate_pixels`), those at least
+    ``max(min_contrast, 5 noise sigmas)`` pit-like are labelled; each object
+    keeps its pixels stronger than half its mean strength (the outline half-way
+    down the pit's blurred edge) and is labelled again.  Objects whose bounding
+    box or moments (:func:`plain_disc`) are not those of one round pit are
+    offered to :func:`_split_object`, which decides.  Returns the
+    labels, the details, the pixel list of the labelled pixels (flat indices,
+    label) and the raw pixel moments per label (:func:`_moment_sums`; zero for
+    dropped labels).
     """
     s = settings.px_per_mm
+    noise_sigma = cands.noise_sigma
     t_low = max(settings.min_contrast, 5.0 * noise_sigma)
     min_px = settings.min_area_mm2 * s * s
-    # pit-likeness: darkness for dark pits, brightness of the lip for bright-rimmed ones
-    dark = settings.look == "dark"
-    gain = np.float32(1.0 - t_low if dark else 1.0 + t_low)
-    limit = np.multiply(background, gain, out=background)  # contrast <= -t  <=>  smooth <= (1 - t) background
-    cand = np.less_equal(smooth, limit) if dark else np.greater_equal(smooth, limit)
-    cand &= coupon
-    n0, lab0 = label_components(cand)
-    idx = np.flatnonzero(cand)
-    # contrast on the candidate pixels only
-    vals = smooth.ravel()[idx] * gain / limit.ravel()[idx] - np.float32(1.0)
-    lv = lab0.ravel()[idx]
-    if dark:
-        vals = -vals
+    c = cands.above(t_low)
+    idx, vals = c.idx, c.strength
+    h, w = c.shape
+    mask = np.zeros((h, w), np.uint8)
+    mask.ravel()[idx] = 1
+    n0, lab = label_components(mask)
+    lv = lab.ravel()[idx]
     vmax = np.zeros(n0 + 1, np.float32)
     np.maximum.at(vmax, lv, vals)
     vmean = np.bincount(lv, vals, minlength=n0 + 1) / np.maximum(np.bincount(lv, minlength=n0 + 1), 1)
@@ -588,62 +823,79 @@ def segment_pits(smooth: np.ndarray, background: np.ndarray, coupon: np.ndarray,
     # threshold are noise or texture
     level = np.maximum(0.5 * vmean, t_low)
     level[vmax < 1.5 * t_low] = np.inf
-    kidx = idx[vals >= level[lv]]  # flat indices of the pixels kept
-    keep = cand  # reused: the candidates are no longer needed
-    keep[...] = False
-    keep.ravel()[kidx] = True
-    del idx, vals, lv
+    kept = vals >= level[lv]
+    kidx = idx[kept]  # flat indices of the pixels kept
+    mask.ravel()[idx[~kept]] = 0
+    del idx, vals, lv, kept, c
     if settings.look == "bright-rim":
-        keep = fill_holes(keep) & coupon  # the pit is the lip and what it encloses
+        keep = fill_holes(mask.view(bool)) & coupon  # the pit is the lip and what it encloses
         kidx = np.flatnonzero(keep)
+        mask = keep.view(np.uint8)
     # the second labelling writes into the first one's array (one full-frame int32 array less)
-    n1, lab = cv2.connectedComponents(keep.view(np.uint8), labels=lab0, connectivity=8, ltype=cv2.CV_32S)
-    del lab0
+    n1, lab = cv2.connectedComponents(mask, labels=lab, connectivity=8, ltype=cv2.CV_32S)
+    del mask
     n1 = int(n1)
-    # per-object stats from the pixel list (much faster than over the full frame)
     kl = lab.ravel()[kidx]
-    kr, kc = np.divmod(kidx, lab.shape[1])
-    area = np.bincount(kl, minlength=n1)
-    rmin = np.full(n1, lab.shape[0], np.int64)
-    cmin = np.full(n1, lab.shape[1], np.int64)
-    rmax = np.zeros(n1, np.int64)
-    cmax = np.zeros(n1, np.int64)
-    np.minimum.at(rmin, kl, kr), np.minimum.at(cmin, kl, kc)
-    np.maximum.at(rmax, kl, kr), np.maximum.at(cmax, kl, kc)
-    del kr, kc
+    sums = _moment_sums(kidx, kl, n1, w)
+    area = sums[0]
     big = area >= min_px
     big[0] = False
     too_small = int((~big[1:]).sum())
     split_made = 0
     next_id = n1
     if settings.split_touching:
+        # bounding boxes from the pixel list (much faster than over the full frame)
+        kr, kc = np.divmod(kidx, w)
+        rmin = np.full(n1, h, np.int64)
+        cmin = np.full(n1, w, np.int64)
+        rmax = np.zeros(n1, np.int64)
+        cmax = np.zeros(n1, np.int64)
+        np.minimum.at(rmin, kl, kr), np.minimum.at(cmin, kl, kc)
+        np.maximum.at(rmax, kl, kr), np.maximum.at(cmax, kl, kc)
+        del kr, kc
         bw, bh = cmax - cmin + 1, rmax - rmin + 1
         extent = area / np.maximum(bw * bh, 1)
         elong = np.maximum(bw, bh) / np.maximum(np.minimum(bw, bh), 1)
-        # a single round or elliptic pit fills about pi/4 (0.785) of its box; pairs and chains fill
-        # less or stretch it (the split itself decides; this only spares it for plain discs)
-        for k in np.flatnonzero(big & ((extent < 0.76) | (elong > 1.15)) & (area >= 2 * min_px)):
-            sl = (slice(rmin[k], rmax[k] + 1), slice(cmin[k], cmax[k] + 1))
-            sub = lab[sl]
-            obj = sub == k
-            parts = _split_object(obj)
-            if parts is None:
-                continue
-            extra = int(parts.max()) - 1
-            # part 1 keeps the object's id, parts 2.. get new ids
-            ids = np.concatenate([[0, k], np.arange(next_id, next_id + extra)]).astype(np.int32)
-            np.copyto(sub, ids[parts], where=obj)
-            next_id += extra
-            split_made += extra
+        # a single round pit fills about pi/4 (0.785) of its box; pairs and chains fill less or stretch
+        # it, a small pit on the side of a larger one makes the box wider than the pit; tilted ellipses
+        # and pairs also leave the moments of a disc (plain_disc)
+        mom = _moments_from_sums(sums)
+        boxy = (extent < 0.76) | (elong > 1.15)
+        offered = big & (area >= 2 * min_px) & (boxy | ~plain_disc(area, mom["major"], mom["minor"]))
+        split_ids = []
+        if offered.any():
+            for k in np.flatnonzero(offered):
+                sl = (slice(rmin[k], rmax[k] + 1), slice(cmin[k], cmax[k] + 1))
+                sub = lab[sl]
+                obj = sub == k
+                parts = _split_object(obj)
+                if parts is None:
+                    continue
+                extra = int(parts.max()) - 1
+                # part 1 keeps the object's id, parts 2.. get new ids
+                ids = np.concatenate([[0, k], np.arange(next_id, next_id + extra)]).astype(np.int32)
+                np.copyto(sub, ids[parts], where=obj)
+                next_id += extra
+                split_made += extra
+                split_ids.append(k)
+        if split_ids:
+            # the split objects' pixels take their new labels, and their moments are recounted
+            was_split = np.zeros(n1, bool)
+            was_split[split_ids] = True
+            ps = np.flatnonzero(was_split[kl])
+            kl[ps] = lab.ravel()[kidx[ps]]
+            redo = _moment_sums(kidx[ps], kl[ps], next_id, w)
+            sums = np.concatenate([sums, np.zeros((sums.shape[0], next_id - n1))], axis=1)
+            affected = np.concatenate([was_split, np.ones(next_id - n1, bool)])
+            sums[:, affected] = redo[:, affected]
     lut = np.where(big, np.arange(n1), 0).astype(np.int32)
     lut = np.concatenate([lut, np.arange(n1, next_id, dtype=np.int32)])
-    kl = lab.ravel()[kidx]
-    sizes = np.bincount(kl, minlength=next_id)
-    lut[sizes < min_px] = 0
+    lut[sums[0] < min_px] = 0
     # objects that reach outside the analysed region are cut by its border
     outside = np.unique(kl[~analysed.ravel()[kidx]])
     outside = outside[lut[outside] > 0]
     lut[outside] = 0
+    sums[:, lut == 0] = 0.0
     kl = lut[kl]
     lab.ravel()[kidx] = kl  # the labelled pixels are exactly kidx: no full-frame pass
     on = kl > 0
@@ -652,7 +904,7 @@ def segment_pits(smooth: np.ndarray, background: np.ndarray, coupon: np.ndarray,
         "dropped_small": too_small, "split_added": int(split_made), "dropped_cut_by_border": int(outside.size),
         "min_pit_px": float(min_px),
     }
-    return lab, details, (kidx[on], kl[on])
+    return lab, details, (kidx[on], kl[on]), sums
 
 
 # -- 5. measurement --------------------------------------------------------------
@@ -751,36 +1003,54 @@ def object_moments(labels: np.ndarray) -> dict[str, np.ndarray]:
     return _moments(idx, labels.ravel()[idx], int(labels.max()), labels.shape[1])
 
 
-def _moments(idx: np.ndarray, lab: np.ndarray, n: int, ncols: int) -> dict[str, np.ndarray]:
-    """:func:`object_moments` from a pixel list (flat indices, labels 1..n)."""
+def _moment_sums(idx: np.ndarray, lab: np.ndarray, n: int, ncols: int) -> np.ndarray:
+    """Raw pixel moments per label 0..n-1 from a pixel list: (6, n) float64 rows
+    count, sum of rows, sum of cols, of rows squared, of cols squared, of rows times cols.
+
+    Sums add up, so the moments of objects changed later (a watershed split) are
+    recounted from their own pixels only.
+    """
     r, c = np.divmod(idx, ncols)
     r, c = r.astype(np.float64), c.astype(np.float64)
-    m0 = np.bincount(lab, minlength=n + 1).astype(np.float64)
+    return np.stack([np.bincount(lab, minlength=n).astype(np.float64), np.bincount(lab, r, n),
+                     np.bincount(lab, c, n), np.bincount(lab, r * r, n), np.bincount(lab, c * c, n),
+                     np.bincount(lab, r * c, n)])
+
+
+def _moments_from_sums(sums: np.ndarray) -> dict[str, np.ndarray]:
+    """Area, centroid and axis lengths (scikit-image's ``regionprops`` definition) from :func:`_moment_sums`."""
+    m0 = sums[0]
     with np.errstate(invalid="ignore", divide="ignore"):
-        mr = np.bincount(lab, r, n + 1) / m0
-        mc = np.bincount(lab, c, n + 1) / m0
+        mr, mc = sums[1] / m0, sums[2] / m0
         # raw second moments, centred per object afterwards (E[r^2] - E[r]^2): in float64 with
         # coordinates below 1e5 px the cancellation costs at most about 1e-6 px^2 of variance, and it
-        # saves gathering the centroids back to every pixel (a third of this function's time)
-        vrr = np.maximum(np.bincount(lab, r * r, n + 1) / m0 - mr * mr, 0)
-        vcc = np.maximum(np.bincount(lab, c * c, n + 1) / m0 - mc * mc, 0)
-        vrc = np.bincount(lab, r * c, n + 1) / m0 - mr * mc
+        # saves gathering the centroids back to every pixel
+        vrr = np.maximum(sums[3] / m0 - mr * mr, 0)
+        vcc = np.maximum(sums[4] / m0 - mc * mc, 0)
+        vrc = sums[5] / m0 - mr * mc
         half = 0.5 * (vrr + vcc)
         root = np.sqrt(np.maximum(0.25 * (vrr - vcc) ** 2 + vrc**2, 0))
         major = 4 * np.sqrt(half + root)
         minor = 4 * np.sqrt(np.maximum(half - root, 0))
-    return {"area": m0, "row": mr, "col": mc, "major": major, "minor": minor, "_idx": idx, "_lab": lab}
+    return {"area": m0, "row": mr, "col": mc, "major": major, "minor": minor}
+
+
+def _moments(idx: np.ndarray, lab: np.ndarray, n: int, ncols: int) -> dict[str, np.ndarray]:
+    """:func:`object_moments` from a pixel list (flat indices, labels 1..n)."""
+    return _moments_from_sums(_moment_sums(idx, lab, n + 1, ncols)) | {"_idx": idx, "_lab": lab}
 
 
 def measure_pits(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | None = None,
                  analysed: np.ndarray | None = None, band_mm: float = 5.0,
-                 pixels: tuple[np.ndarray, np.ndarray] | None = None) -> tuple[pd.DataFrame, np.ndarray, dict]:
+                 pixels: tuple[np.ndarray, np.ndarray] | None = None,
+                 sums: np.ndarray | None = None) -> tuple[pd.DataFrame, np.ndarray, dict]:
     """Per-pit geometry (and depth) in mm; pits renumbered 1..n in reading order.
 
     Reading order: bands ``band_mm`` tall from the top, left to right inside a band.
     ``pixels`` (flat indices and labels of every labelled pixel, as returned by
     :func:`segment_pits`) saves two full-frame passes; ``labels`` is then
-    renumbered in place.
+    renumbered in place.  ``sums`` (its moments per label, :func:`_moment_sums`)
+    saves recounting them.
 
     Returns
     -------
@@ -795,6 +1065,8 @@ def measure_pits(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | N
         coef, details = surface_reference(height_mm, surface, exclude=labels)
     if pixels is None:
         mom = object_moments(labels)
+    elif sums is not None:
+        mom = _moments_from_sums(sums) | {"_idx": pixels[0], "_lab": pixels[1]}
     else:
         mom = _moments(pixels[0], pixels[1], int(pixels[1].max()) if pixels[1].size else 0, labels.shape[1])
     present = np.flatnonzero(mom["area"] > 0)
@@ -868,7 +1140,7 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
         Blank or badly exposed picture, no coupon found, edge band larger than the
         coupon, height map of another size.
     """
-    grey = grey_level(rgb)
+    grey = grey_pixels(rgb)  # 8-bit for an 8-bit picture: no full-frame float array from here on
     check_exposure(rgb, grey)
     if height_mm is not None and height_mm.shape != grey.shape:
         raise AnalysisError(
@@ -880,7 +1152,7 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
         rect = rectify_view(rgb, homography_px_to_mm, s, height_mm)  # None when square-on: no float copy
         if rect is not None:
             rgb, height_mm, rectified = rect
-            grey = grey_level(rgb)
+            grey = grey_pixels(rgb)
     region = find_region(grey, settings.edge_mm * s, settings.whole_frame)
     coupon, analysed = region.coupon, region.analysed
     area_px = int(np.count_nonzero(analysed))
@@ -893,18 +1165,14 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
     if clipped > 0.05:
         raise AnalysisError(f"coupon surface is overexposed ({100 * clipped:.0f} % of its pixels clipped at white); "
                             "reduce the exposure so the metal is not saturated")
-    background = background_level(grey, coupon, settings.flatten_mm * s)
-    smooth = smooth_grey(grey)
-    del grey
     # a quarter of a million points estimate the noise (robust sigma: its standard error is about 0.2 %)
-    nstep = max(1, int(np.sqrt(smooth.size / 2.5e5)))
-    n_sub = analysed[::nstep, ::nstep]
-    sample = smooth[::nstep, ::nstep][n_sub] / background[::nstep, ::nstep][n_sub] - 1.0
-    noise = 1.4826 * float(np.median(np.abs(sample - np.median(sample)))) if sample.size else 0.0
-    labels, details, pixels = segment_pits(smooth, background, coupon, analysed, settings, noise)
-    del smooth, background
+    cands = candidate_pixels(grey, background_map(grey, coupon, settings.flatten_mm * s), coupon, analysed,
+                             settings.look, settings.min_contrast)
+    del grey
+    labels, details, pixels, sums = segment_pits(cands, coupon, analysed, settings)
+    del cands
     # pit walls just outside the outlines are clipped as outliers by the reference fit
-    table, labels, ref = measure_pits(labels, s, height_mm, analysed, pixels=pixels)
+    table, labels, ref = measure_pits(labels, s, height_mm, analysed, pixels=pixels, sums=sums)
     if ref:
         details["reference_surface"] = ref
         check_height_relief(ref, height_unit)

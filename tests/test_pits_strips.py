@@ -1,0 +1,141 @@
+"""The strip-by-strip passes of the pit analysis against full-frame references.
+
+The pit analysis never makes a full-frame float array of a scan: the enlarged
+signed distance, the background and the smoothed grey level exist one strip of
+rows at a time (``RowUpsampler``, ``candidate_pixels``).  Each is checked here
+against the full-frame computation it replaces, made with the reference
+libraries: OpenCV's ``resize`` (bilinear enlargement) and scikit-image's
+``h_maxima`` (markers of the watershed split).
+"""
+
+from __future__ import annotations
+
+import cv2
+import numpy as np
+import pytest
+from skimage.morphology import h_maxima
+
+from coupon.io.images import float01
+from coupon.segment.pits import (
+    STRIP_ROWS,
+    RowUpsampler,
+    _split_object,
+    background_level,
+    background_map,
+    candidate_pixels,
+    find_region,
+    h_maxima_small,
+    object_moments,
+    plain_disc,
+    smooth_grey,
+)
+
+
+@pytest.mark.parametrize("small_shape, shape", [((5, 7), (3 * STRIP_ROWS + 5, 301)), ((1, 9), (70, 40)),
+                                                ((2, 3), (200, 7)), ((37, 53), (500, 800)),
+                                                ((40, 30), (40, 30))])
+def test_row_upsampler_equals_opencv_resize(small_shape, shape):
+    """Every strip equals the same rows of cv2.resize(..., INTER_LINEAR) (reference library: OpenCV)."""
+    rng = np.random.default_rng(3)
+    small = rng.random(small_shape).astype(np.float32) * 4 - 2
+    ref = cv2.resize(small, (shape[1], shape[0]), interpolation=cv2.INTER_LINEAR)
+    up = RowUpsampler(small, shape)
+    for r0, r1 in [(0, shape[0]), (0, 1), (shape[0] - 3, shape[0]), (shape[0] // 3, shape[0] // 2 + 1)]:
+        np.testing.assert_allclose(up.rows(r0, r1), ref[r0:r1], rtol=0, atol=2e-6)
+
+
+@pytest.mark.parametrize("threshold", [0.0, 3.5, 40.0])
+def test_row_upsampler_threshold_equals_thresholded_resize(threshold):
+    """The mask made only about the outlines equals thresholding the full enlargement (OpenCV)."""
+    # the signed distance of a tilted rectangle, as find_region makes it on its reduced copy
+    small = np.zeros((90, 130), np.uint8)
+    cv2.fillPoly(small, [np.array([[12, 20], [118, 8], [124, 70], [18, 84]], np.int32)], 1)
+    inside = cv2.distanceTransform(np.pad(small, 1), cv2.DIST_L2, 5)[1:-1, 1:-1]
+    outside = cv2.distanceTransform(np.pad(1 - small, 1, constant_values=1), cv2.DIST_L2, 5)[1:-1, 1:-1]
+    sd = (np.where(small > 0, inside - 0.5, 0.5 - outside) * 7.5).astype(np.float32)
+    shape = (675, 975)
+    ref = cv2.resize(sd, (shape[1], shape[0]), interpolation=cv2.INTER_LINEAR) > np.float32(threshold)
+    got = RowUpsampler(sd, shape).greater(threshold, np.empty(shape, bool))
+    assert np.array_equal(got, ref)
+
+
+def test_h_maxima_small_equals_scikit_image():
+    """Markers of the split: the iterated-dilation h-maxima equal skimage.morphology.h_maxima (reference library)."""
+    rng = np.random.default_rng(11)
+    for _ in range(60):
+        m = np.zeros((70, 110), np.uint8)
+        for _ in range(int(rng.integers(1, 5))):
+            cv2.circle(m, (int(rng.integers(15, 95)), int(rng.integers(15, 55))), int(rng.integers(3, 22)), 1, -1)
+        d = cv2.distanceTransform(np.pad(m, 1), cv2.DIST_L2, cv2.DIST_MASK_PRECISE)[1:-1, 1:-1]
+        for h in (0.5, 1.0, 3.0):
+            assert np.array_equal(h_maxima_small(d, h), h_maxima(d, h).astype(bool))
+    noise = rng.random((40, 40)).astype(np.float32) * 3
+    assert np.array_equal(h_maxima_small(noise, 0.5), h_maxima(noise, 0.5).astype(bool))
+    big = cv2.GaussianBlur(rng.random((260, 260)).astype(np.float32), (0, 0), 6) * 50  # the hand-over path
+    assert np.array_equal(h_maxima_small(big, 0.2), h_maxima(big, 0.2).astype(bool))
+    assert not h_maxima_small(np.ones((5, 5), np.float32), 0.5).any()
+
+
+def _scene(seed=5, shape=(700, 1000)):
+    """A lit metal plate on a dark table with dark round pits (synthetic ground truth)."""
+    rng = np.random.default_rng(seed)
+    h, w = shape
+    yy, xx = np.mgrid[:h, :w]
+    grey = 0.55 + 0.15 * xx / w - 0.1 * yy / h
+    plate = (yy > 60) & (yy < h - 60) & (xx > 80) & (xx < w - 80)
+    grey = np.where(plate, grey, 0.08)
+    for _ in range(120):
+        r, c, rad = rng.integers(80, h - 80), rng.integers(100, w - 100), rng.uniform(2, 9)
+        grey = np.where((yy - r) ** 2 + (xx - c) ** 2 <= rad * rad, grey * rng.uniform(0.3, 0.7), grey)
+    grey = grey + rng.normal(0, 0.01, grey.shape)
+    return np.clip(np.rint(grey * 255), 0, 255).astype(np.uint8)
+
+
+@pytest.mark.parametrize("look", ["dark", "bright-rim"])
+def test_candidate_pixels_equal_the_full_frame_contrast(look):
+    """The strips give the candidates and strengths of the full-frame contrast smooth / background - 1."""
+    grey = _scene()
+    region = find_region(grey, 10.0)
+    window = 120.0
+    bg_small = background_map(grey, region.coupon, window)
+    got = candidate_pixels(grey, bg_small, region.coupon, region.analysed, look, 0.12)
+    # the reference: full-frame arrays as the analysis made them before it worked in strips
+    contrast = smooth_grey(float01(grey)) / background_level(grey, region.coupon, window) - 1.0
+    strength = -contrast if look == "dark" else contrast
+    ref_idx = np.flatnonzero((strength >= np.float32(0.12)) & region.coupon)
+    # a product and a quotient round differently: pixels exactly at the threshold may go either way
+    assert np.setxor1d(got.idx, ref_idx).size <= max(2, ref_idx.size // 10_000)
+    common, gi, ri = np.intersect1d(got.idx, ref_idx, return_indices=True)
+    assert common.size > 200
+    np.testing.assert_allclose(got.strength[gi], strength.ravel()[ref_idx[ri]], rtol=0, atol=2e-6)
+    nstep = max(1, int(np.sqrt(grey.size / 2.5e5)))
+    sample = contrast[::nstep, ::nstep][region.analysed[::nstep, ::nstep]]
+    ref_noise = 1.4826 * np.median(np.abs(sample - np.median(sample)))
+    assert got.noise_sigma == pytest.approx(ref_noise, rel=1e-4)
+
+
+def _disc(radius, shape=(120, 120), centre=(60.3, 59.6)):
+    yy, xx = np.mgrid[:shape[0], :shape[1]]
+    return ((yy - centre[0]) ** 2 + (xx - centre[1]) ** 2 <= radius * radius).astype(np.int32)
+
+
+def test_plain_disc_tells_discs_from_ellipses_and_pairs():
+    """Moments of pixel discs pass as round; tilted ellipses and touching pairs do not (geometry)."""
+    rng = np.random.default_rng(2)
+    for radius in (3.5, 4, 4.5, 6, 10, 20, 40):
+        for centre in rng.uniform(99, 101, (8, 2)):
+            m = object_moments(_disc(radius, (200, 200), tuple(centre)))
+            assert plain_disc(m["area"][1:], m["major"][1:], m["minor"][1:]).all(), (radius, centre)
+    for axes, angle in [((10, 7), 0), ((20, 8), 30), ((12, 9), 45)]:
+        e = np.zeros((120, 120), np.uint8)
+        cv2.ellipse(e, (60, 60), axes, angle, 0, 360, 1, -1)
+        m = object_moments(e.astype(np.int32))
+        assert not plain_disc(m["area"][1:], m["major"][1:], m["minor"][1:]).any(), (axes, angle)
+    for r1, r2, angle in [(10, 10, 0), (10, 8, 45), (15, 15, 30), (20, 7, 0), (10, 4, 20)]:
+        m = np.zeros((200, 200), np.uint8)
+        cv2.circle(m, (100, 100), r1, 1, -1)
+        d = r1 + r2 - 2
+        cv2.circle(m, (int(100 + d * np.cos(np.radians(angle))), int(100 + d * np.sin(np.radians(angle)))), r2, 1, -1)
+        assert _split_object(m.astype(bool)) is not None
+        mo = object_moments(m.astype(np.int32))
+        assert not plain_disc(mo["area"][1:], mo["major"][1:], mo["minor"][1:]).any(), (r1, r2, angle)
