@@ -111,6 +111,12 @@ def test_height_map_wrong_size_and_unit(runner, scene, tmp_path):
     r = invoke(runner, ["pits", img, "--px-per-mm", 20, "--out", tmp_path / "o1", "--height-map",
                         tmp_path / "short.tiff", "--height-unit", "um"])
     assert r.exit_code == 1 and "registered pixel for pixel" in r.output
+    # wrong size and implausible values at once: the size is named first, as a serial read checks it
+    # (the map is read and converted on a helper thread before the image's size is known)
+    write_float_tiff(tmp_path / "short_flat.tiff", np.full((h.shape[0] - 5, h.shape[1]), 0.05, np.float32))
+    r = invoke(runner, ["pits", img, "--px-per-mm", 20, "--out", tmp_path / "o0", "--height-map",
+                        tmp_path / "short_flat.tiff", "--height-unit", "um"])
+    assert r.exit_code == 1 and "registered pixel for pixel" in r.output and "spans only" not in r.output
     # micrometre values declared as millimetres: thousands of mm of relief
     r = invoke(runner, ["pits", img, "--px-per-mm", 20, "--out", tmp_path / "o2", "--height-map",
                         d / "c21_height.tiff", "--height-unit", "mm"])

@@ -139,3 +139,19 @@ def test_plain_disc_tells_discs_from_ellipses_and_pairs():
         assert _split_object(m.astype(bool)) is not None
         mo = object_moments(m.astype(np.int32))
         assert not plain_disc(mo["area"][1:], mo["major"][1:], mo["minor"][1:]).any(), (r1, r2, angle)
+
+
+@pytest.mark.parametrize("shape", [(400, 600), (399, 597), (101, 253)])
+@pytest.mark.parametrize("k", [2, 3, 4, 7])
+def test_overlay_block_centres_equal_slicing(shape, k):
+    """The overlay's reduced picture is the centre pixel of each whole block, as numpy slicing picks it."""
+    from coupon.report.pit_figures import block_centres
+
+    rng = np.random.default_rng(k)
+    rgb = rng.integers(0, 256, shape + (3,), dtype=np.uint8)
+    hb, wb = shape[0] // k, shape[1] // k
+    ref = rgb[k // 2::k, k // 2::k][:hb, :wb]
+    assert np.array_equal(block_centres(rgb, k), ref)
+    assert np.array_equal(block_centres(float01(rgb), k), float01(ref))
+    labels = rng.integers(0, 70_000, shape, dtype=np.int32)
+    assert np.array_equal(block_centres(labels, k), labels[k // 2::k, k // 2::k][:hb, :wb])

@@ -26,7 +26,7 @@ from coupon.cli.common import (
 from coupon.errors import AnalysisError, CouponError
 from coupon.io.atomic import write_csv, write_json
 from coupon.io.batch import ResumeLedger, run_batch, settings_hash
-from coupon.io.heightmap import HEIGHT_UNITS, height_map_to_mm, read_height_map
+from coupon.io.heightmap import HEIGHT_UNITS, check_height_shape, read_height_map_mm
 from coupon.io.images import expand_image_paths, file_sha256, load_image, try_sha256
 from coupon.io.tables import read_previous
 from coupon.ratings import mass_loss as ml
@@ -98,13 +98,13 @@ def pit_rows_for_image(path: Path, job: PitJob) -> dict:
     """
     hpath = job.height_path(path)
     known = dict(job.height_sha256).get(str(hpath)) if hpath is not None else None
-    # one helper thread on the second core (OpenCV's decoders and hashlib release the GIL), in turn: the
-    # height map is read while the image decodes, then hashed while the image is analysed
+    # one helper thread on the second core (OpenCV's decoders, numpy and hashlib release the GIL), in turn:
+    # the height map is read and converted to mm while the image decodes, then hashed while it is analysed
     helpers = ThreadPoolExecutor(max_workers=1)
     try:
         read_future = hash_future = None
         if hpath is not None:
-            read_future = helpers.submit(read_height_map, hpath, job.height_unit)
+            read_future = helpers.submit(read_height_map_mm, hpath, job.height_unit)
             if known is None:
                 hash_future = helpers.submit(file_sha256, hpath)
         rows = _pit_rows(path, job, hpath, known, read_future, hash_future)
@@ -119,7 +119,10 @@ def _pit_rows(path: Path, job: PitJob, hpath: Path | None, known: str | None, re
     img = load_image(path, max_pixels=job.max_pixels)  # an image error comes first, as in a serial read
     height = None
     if hpath is not None:
-        height = height_map_to_mm(read_future.result(), hpath, job.height_unit, shape_rc=img.shape_rc)
+        stored_shape, height, value_error = read_future.result()
+        check_height_shape(stored_shape, hpath, img.shape_rc)  # the size first, as load_height_map checks it
+        if value_error is not None:
+            raise value_error
     try:
         hom = None if job.homography is None else np.asarray(job.homography, dtype=np.float64)
         # an 8-bit picture is analysed from its decoded pixels: no float copy of a 24 MP scan (288 MB)

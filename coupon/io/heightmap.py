@@ -134,14 +134,40 @@ def read_height_map(path: str | os.PathLike, unit: str) -> np.ndarray:
     return arr
 
 
+def check_height_shape(shape: tuple[int, ...], path: str | os.PathLike, shape_rc: tuple[int, int] | None) -> None:
+    """Refuse a height map whose size is not the image's (``shape_rc``; None checks nothing).
+
+    Raises
+    ------
+    ImageLoadError
+    """
+    if shape_rc is not None and tuple(shape) != tuple(shape_rc):
+        raise ImageLoadError(
+            f"height map is {shape[1]}x{shape[0]} values but the image is {shape_rc[1]}x{shape_rc[0]} px "
+            "(width x height); it must be registered pixel for pixel to the image", Path(path))
+
+
+def read_height_map_mm(path: str | os.PathLike, unit: str) -> tuple[tuple[int, ...], np.ndarray | None,
+                                                                     ImageLoadError | None]:
+    """Read a height map and convert it to mm before the image's size is known (for a helper thread).
+
+    Returns the stored size, the map in mm (or None) and the error its values
+    gave (or None): the caller checks the size with :func:`check_height_shape`
+    first, so errors come in the order :func:`load_height_map` gives them.
+    Reading errors are raised.
+    """
+    arr = read_height_map(path, unit)
+    try:
+        return arr.shape, height_map_to_mm(arr, path, unit), None
+    except ImageLoadError as exc:
+        return arr.shape, None, exc
+
+
 def height_map_to_mm(arr: np.ndarray, path: str | os.PathLike, unit: str,
                      shape_rc: tuple[int, int] | None = None) -> np.ndarray:
     """Check the values :func:`read_height_map` returned and convert them to mm (see :func:`load_height_map`)."""
     path = Path(path)
-    if shape_rc is not None and tuple(arr.shape) != tuple(shape_rc):
-        raise ImageLoadError(
-            f"height map is {arr.shape[1]}x{arr.shape[0]} values but the image is {shape_rc[1]}x{shape_rc[0]} px "
-            "(width x height); it must be registered pixel for pixel to the image", path)
+    check_height_shape(arr.shape, path, shape_rc)
     if not arr.flags.writeable:
         arr = arr.copy()
     finite = np.isfinite(arr)

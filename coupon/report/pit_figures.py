@@ -63,6 +63,19 @@ def _overlay_factor(shape_rc: tuple[int, int], max_side_px: int) -> tuple[int, f
     return 1, max(1.0, min(3.0, 900 / side))
 
 
+def block_centres(img: np.ndarray, k: int) -> np.ndarray:
+    """The centre pixel (offset k // 2) of every whole k x k block: ``img[k//2::k, k//2::k]`` cut to whole blocks.
+
+    A colour picture goes through OpenCV's exact nearest-pixel reduction by exactly
+    k, which picks the same pixels (tested) in 4 ms at 24 MP where numpy's strided
+    copy of 3-byte pixels took 13 to 19 ms; label maps and masks are sliced.
+    """
+    hb, wb = img.shape[0] // k, img.shape[1] // k
+    if img.ndim == 3 and img.dtype in (np.uint8, np.float32):
+        return cv2.resize(img[:hb * k, :wb * k], (wb, hb), interpolation=cv2.INTER_NEAREST_EXACT)
+    return np.ascontiguousarray(img[k // 2::k, k // 2::k][:hb, :wb])
+
+
 def overlay_image(rgb: np.ndarray, labels: np.ndarray, analysed: np.ndarray, pits: pd.DataFrame,
                   px_per_mm: float, max_side_px: int = 2400) -> np.ndarray:
     """The picture with pits outlined and numbered, as uint8 RGB.
@@ -77,12 +90,12 @@ def overlay_image(rgb: np.ndarray, labels: np.ndarray, analysed: np.ndarray, pit
     if k > 1:
         # nearest-pixel sampling (the centre pixel of each k x k block) of picture, labels and region alike:
         # outlines stay exactly on the picture's pixels, and only one pixel in k*k is read and converted to
-        # 8 bits (an area reduction of the whole frame took 60 ms of the job at 24 MP, this takes about 10)
-        picked = np.ascontiguousarray(np.asarray(rgb)[k // 2::k, k // 2::k])
+        # 8 bits (an area reduction of the whole frame took 60 ms of the job at 24 MP, this takes about 8)
+        picked = block_centres(np.asarray(rgb), k)
         small = picked if picked.dtype == np.uint8 else cv2.convertScaleAbs(picked, alpha=255.0)
-        lab = np.ascontiguousarray(labels[k // 2::k, k // 2::k])
-        an = np.ascontiguousarray(analysed[k // 2::k, k // 2::k])
-        size = (small.shape[1], small.shape[0])  # the blocks that have a centre pixel
+        lab = block_centres(labels, k)
+        an = block_centres(analysed, k)
+        size = (small.shape[1], small.shape[0])  # the whole blocks
         scale_xy = 1.0 / k
     else:
         size = (max(1, int(round(w * f))), max(1, int(round(h * f))))
@@ -95,6 +108,7 @@ def overlay_image(rgb: np.ndarray, labels: np.ndarray, analysed: np.ndarray, pit
     out = small if small.dtype == np.uint8 else cv2.convertScaleAbs(np.asarray(small, np.float32), alpha=255.0)
     if out is rgb:
         out = out.copy()  # never draw on the caller's picture
+    out = np.ascontiguousarray(out)  # drawn on through flat views below
     # dim outside the analysed region (OpenCV's masked copy: a numpy copyto with a broadcast mask is 5 x slower)
     cv2.copyTo(cv2.convertScaleAbs(out, alpha=DIMMED), (~an).view(np.uint8), out)
     # analysed border: dashed white
@@ -111,7 +125,8 @@ def overlay_image(rgb: np.ndarray, labels: np.ndarray, analysed: np.ndarray, pit
         ids = pits["pit_id"].to_numpy()
         ok = ids < len(colour_of)
         colour_of[ids[ok]] = [PIT_PALETTE[c] for c, o in zip(classes, ok) if o]
-        out[edge] = colour_of[lab[edge]]
+        e = np.flatnonzero(edge)  # one pass over the mask instead of two boolean indexings
+        out.reshape(-1, 3)[e] = colour_of[lab.ravel()[e]]
         scale = max(0.35, min(0.8, 0.9 * max(size) / 2400))
         thick = 1 if scale < 0.6 else 2
         s = px_per_mm * scale_xy
