@@ -155,3 +155,18 @@ def test_overlay_block_centres_equal_slicing(shape, k):
     assert np.array_equal(block_centres(float01(rgb), k), float01(ref))
     labels = rng.integers(0, 70_000, shape, dtype=np.int32)
     assert np.array_equal(block_centres(labels, k), labels[k // 2::k, k // 2::k][:hb, :wb])
+
+
+def test_candidate_pass_on_two_threads_equals_one(monkeypatch):
+    """Splitting the strips over two threads changes nothing (same pixels, strengths and noise)."""
+    import coupon.segment.pits as pits
+
+    grey = _scene(seed=8, shape=(2 * pits.PARALLEL_MIN_STRIPS * STRIP_ROWS + 37, 640))
+    region = find_region(grey, 10.0)
+    bg = background_map(grey, region.coupon, 120.0)
+    two = candidate_pixels(grey, bg, region.coupon, region.analysed, "dark", 0.12)
+    monkeypatch.setattr(pits, "PARALLEL_MIN_STRIPS", 10**9)
+    one = candidate_pixels(grey, bg, region.coupon, region.analysed, "dark", 0.12)
+    assert two.idx.size > 100
+    assert np.array_equal(two.idx, one.idx) and np.array_equal(two.strength, one.strength)
+    assert two.noise_sigma == one.noise_sigma

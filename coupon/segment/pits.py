@@ -33,6 +33,7 @@ measured from the image's top-left pixel corner: x along columns, y down rows.
 
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import cv2
@@ -358,6 +359,8 @@ def _signed_distance(mask: np.ndarray) -> np.ndarray:
 #: slower), where full-frame float32 arrays (96 MB each at 24 MP) cost memory traffic and, on first
 #: touch, page faults.
 STRIP_ROWS = 64
+#: A frame of at least twice this many strips has its candidate pass split over two threads.
+PARALLEL_MIN_STRIPS = 8
 
 
 def _strips(h: int, rows: int = STRIP_ROWS):
@@ -490,9 +493,10 @@ def find_region(grey: np.ndarray, edge_px: float, whole_frame: bool = False) -> 
     small_mask = cv2.fillPoly(np.zeros(small_mask.shape, np.uint8), [hull], 1).astype(bool)
     scale = 0.5 * (w / small.shape[1] + h / small.shape[0])  # full-size px per reduced px
     up = RowUpsampler(_signed_distance(small_mask) * np.float32(scale), (h, w))
-    # the full-size signed distance is interpolated only about the outlines, one strip at a time
-    coupon = up.greater(0.0, np.empty((h, w), bool))
-    analysed = up.greater(max(edge_px, 0.5), np.empty((h, w), bool))
+    # the full-size signed distance is interpolated only about the outlines, one strip at a time; the two
+    # masks on two threads (numpy's array loops release the GIL)
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        coupon, analysed = pool.map(lambda t: up.greater(t, np.empty((h, w), bool)), (0.0, max(edge_px, 0.5)))
     return Region(coupon, analysed, "coupon found against the background")
 
 
@@ -613,25 +617,41 @@ def candidate_pixels(grey: np.ndarray, background: np.ndarray, coupon: np.ndarra
     kernel = cv2.getGaussianKernel(5, smooth_px, cv2.CV_32F) if smooth_px > 0 else np.array([[1.0]], np.float32)
     kx = kernel * np.float32(1.0 / 255.0) if grey.dtype == np.uint8 else kernel
     src = grey if grey.dtype == np.uint8 else np.asarray(grey, np.float32)
-    gbuf = np.empty((STRIP_ROWS + 2 * halo, w), np.float32)
-    lbuf = np.empty((STRIP_ROWS, w), np.float32)
-    mbuf = np.empty((STRIP_ROWS, w), bool)
     test = np.less_equal if dark else np.greater_equal
-    idx, vals, sample = [], [], []
-    for r0, r1 in _strips(h):
-        a0, a1 = max(0, r0 - halo), min(h, r1 + halo)
-        g = cv2.sepFilter2D(src[a0:a1], cv2.CV_32F, kx, kernel, dst=gbuf[:a1 - a0])[r0 - a0:r1 - a0]
-        limit = up.rows(r0, r1, lbuf[:r1 - r0])
-        # the noise sample: every nstep-th row and column of the frame inside the analysed region
-        first = (-r0) % nstep
-        on = analysed[r0:r1][first::nstep, ::nstep]
-        sample.append(g[first::nstep, ::nstep][on] / limit[first::nstep, ::nstep][on])
-        m = test(g, limit, out=mbuf[:r1 - r0])
-        m &= coupon[r0:r1]
-        k = np.flatnonzero(m)
-        vals.append(g.ravel()[k] / limit.ravel()[k])
-        k += r0 * w
-        idx.append(k)
+
+    def run(strips):
+        gbuf = np.empty((STRIP_ROWS + 2 * halo, w), np.float32)
+        lbuf = np.empty((STRIP_ROWS, w), np.float32)
+        mbuf = np.empty((STRIP_ROWS, w), bool)
+        idx, vals, sample = [], [], []
+        for r0, r1 in strips:
+            a0, a1 = max(0, r0 - halo), min(h, r1 + halo)
+            g = cv2.sepFilter2D(src[a0:a1], cv2.CV_32F, kx, kernel, dst=gbuf[:a1 - a0])[r0 - a0:r1 - a0]
+            limit = up.rows(r0, r1, lbuf[:r1 - r0])
+            # the noise sample: every nstep-th row and column of the frame inside the analysed region
+            first = (-r0) % nstep
+            on = analysed[r0:r1][first::nstep, ::nstep]
+            sample.append(g[first::nstep, ::nstep][on] / limit[first::nstep, ::nstep][on])
+            m = test(g, limit, out=mbuf[:r1 - r0])
+            m &= coupon[r0:r1]
+            k = np.flatnonzero(m)
+            vals.append(g.ravel()[k] / limit.ravel()[k])
+            k += r0 * w
+            idx.append(k)
+        return idx, vals, sample
+
+    strips = _strips(h)
+    if len(strips) >= 2 * PARALLEL_MIN_STRIPS:
+        # the top and bottom halves on two threads (OpenCV and numpy's array loops release the GIL);
+        # concatenated in order, so the result is the one-thread result
+        half = len(strips) // 2
+        with ThreadPoolExecutor(max_workers=2) as pool:
+            parts = list(pool.map(run, [strips[:half], strips[half:]]))
+    else:
+        parts = [run(strips)]
+    idx = [a for p in parts for a in p[0]]
+    vals = [a for p in parts for a in p[1]]
+    sample = [a for p in parts for a in p[2]]
     # smooth / limit = (smooth / background) / gain: the pit-likeness and the contrast sample
     vals = np.concatenate(vals)
     vals *= -gain if dark else gain
@@ -791,7 +811,7 @@ def plain_disc(area: np.ndarray, major: np.ndarray, minor: np.ndarray) -> np.nda
 
 
 def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, settings: PitSettings
-                 ) -> tuple[np.ndarray, dict, tuple[np.ndarray, np.ndarray], np.ndarray]:
+                 ) -> tuple[np.ndarray, dict, tuple[np.ndarray, ...], np.ndarray]:
     """Label the counted pits (int32, ids not consecutive) and say what was dropped.
 
     From the candidate pixels (:func:`candidate_pixels`), those at least
@@ -801,7 +821,7 @@ def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, se
     box or moments (:func:`plain_disc`) are not those of one round pit are
     offered to :func:`_split_object`, which decides.  Returns the
     labels, the details, the pixel list of the labelled pixels (flat indices,
-    label) and the raw pixel moments per label (:func:`_moment_sums`; zero for
+    label, row, column) and the raw pixel moments per label (:func:`_moment_sums`; zero for
     dropped labels).
     """
     s = settings.px_per_mm
@@ -836,7 +856,8 @@ def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, se
     del mask
     n1 = int(n1)
     kl = lab.ravel()[kidx]
-    sums = _moment_sums(kidx, kl, n1, w)
+    kr, kc = np.divmod(kidx, w)  # rows and columns of the kept pixels, for moments, boxes and depths
+    sums = _moment_sums(kidx, kl, n1, w, (kr, kc))
     area = sums[0]
     big = area >= min_px
     big[0] = False
@@ -845,14 +866,12 @@ def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, se
     next_id = n1
     if settings.split_touching:
         # bounding boxes from the pixel list (much faster than over the full frame)
-        kr, kc = np.divmod(kidx, w)
         rmin = np.full(n1, h, np.int64)
         cmin = np.full(n1, w, np.int64)
         rmax = np.zeros(n1, np.int64)
         cmax = np.zeros(n1, np.int64)
         np.minimum.at(rmin, kl, kr), np.minimum.at(cmin, kl, kc)
         np.maximum.at(rmax, kl, kr), np.maximum.at(cmax, kl, kc)
-        del kr, kc
         bw, bh = cmax - cmin + 1, rmax - rmin + 1
         extent = area / np.maximum(bw * bh, 1)
         elong = np.maximum(bw, bh) / np.maximum(np.minimum(bw, bh), 1)
@@ -884,7 +903,7 @@ def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, se
             was_split[split_ids] = True
             ps = np.flatnonzero(was_split[kl])
             kl[ps] = lab.ravel()[kidx[ps]]
-            redo = _moment_sums(kidx[ps], kl[ps], next_id, w)
+            redo = _moment_sums(kidx[ps], kl[ps], next_id, w, (kr[ps], kc[ps]))
             sums = np.concatenate([sums, np.zeros((sums.shape[0], next_id - n1))], axis=1)
             affected = np.concatenate([was_split, np.ones(next_id - n1, bool)])
             sums[:, affected] = redo[:, affected]
@@ -904,7 +923,7 @@ def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, se
         "dropped_small": too_small, "split_added": int(split_made), "dropped_cut_by_border": int(outside.size),
         "min_pit_px": float(min_px),
     }
-    return lab, details, (kidx[on], kl[on]), sums
+    return lab, details, (kidx[on], kl[on], kr[on], kc[on]), sums
 
 
 # -- 5. measurement --------------------------------------------------------------
@@ -1003,14 +1022,16 @@ def object_moments(labels: np.ndarray) -> dict[str, np.ndarray]:
     return _moments(idx, labels.ravel()[idx], int(labels.max()), labels.shape[1])
 
 
-def _moment_sums(idx: np.ndarray, lab: np.ndarray, n: int, ncols: int) -> np.ndarray:
+def _moment_sums(idx: np.ndarray, lab: np.ndarray, n: int, ncols: int,
+                 rc: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
     """Raw pixel moments per label 0..n-1 from a pixel list: (6, n) float64 rows
     count, sum of rows, sum of cols, of rows squared, of cols squared, of rows times cols.
 
     Sums add up, so the moments of objects changed later (a watershed split) are
-    recounted from their own pixels only.
+    recounted from their own pixels only.  ``rc``: the pixels' rows and columns,
+    when already known (``np.divmod(idx, ncols)``).
     """
-    r, c = np.divmod(idx, ncols)
+    r, c = np.divmod(idx, ncols) if rc is None else rc
     r, c = r.astype(np.float64), c.astype(np.float64)
     return np.stack([np.bincount(lab, minlength=n).astype(np.float64), np.bincount(lab, r, n),
                      np.bincount(lab, c, n), np.bincount(lab, r * r, n), np.bincount(lab, c * c, n),
@@ -1042,12 +1063,12 @@ def _moments(idx: np.ndarray, lab: np.ndarray, n: int, ncols: int) -> dict[str, 
 
 def measure_pits(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | None = None,
                  analysed: np.ndarray | None = None, band_mm: float = 5.0,
-                 pixels: tuple[np.ndarray, np.ndarray] | None = None,
+                 pixels: tuple[np.ndarray, ...] | None = None,
                  sums: np.ndarray | None = None) -> tuple[pd.DataFrame, np.ndarray, dict]:
     """Per-pit geometry (and depth) in mm; pits renumbered 1..n in reading order.
 
     Reading order: bands ``band_mm`` tall from the top, left to right inside a band.
-    ``pixels`` (flat indices and labels of every labelled pixel, as returned by
+    ``pixels`` (flat indices and labels of every labelled pixel, optionally rows and columns, as returned by
     :func:`segment_pits`) saves two full-frame passes; ``labels`` is then
     renumbered in place.  ``sums`` (its moments per label, :func:`_moment_sums`)
     saves recounting them.
@@ -1066,7 +1087,7 @@ def measure_pits(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | N
     if pixels is None:
         mom = object_moments(labels)
     elif sums is not None:
-        mom = _moments_from_sums(sums) | {"_idx": pixels[0], "_lab": pixels[1]}
+        mom = _moments_from_sums(sums) | {"_idx": pixels[0], "_lab": pixels[1], "_rc": pixels[2:4]}
     else:
         mom = _moments(pixels[0], pixels[1], int(pixels[1].max()) if pixels[1].size else 0, labels.shape[1])
     present = np.flatnonzero(mom["area"] > 0)
@@ -1092,7 +1113,7 @@ def measure_pits(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | N
     depth = np.full(len(old), np.nan)
     if height_mm is not None:
         idx, lab = mom["_idx"], lut[mom["_lab"]]
-        rr, cc = np.divmod(idx, labels.shape[1])
+        rr, cc = mom["_rc"] if len(mom.get("_rc", ())) == 2 else np.divmod(idx, labels.shape[1])
         # float32: heights of a few mm keep sub-nanometre resolution, and half the memory traffic
         dz = _eval_reference(coef.astype(np.float32), np.float32(details["scale_px"]), rr.astype(np.float32),
                              cc.astype(np.float32))
