@@ -1,4 +1,4 @@
-"""The strip-by-strip passes of the pit analysis against full-frame references.
+"""The strip-by-strip passes of the pit analysis (and its reused scratch arrays) against full-frame references.
 
 The pit analysis never makes a full-frame float array of a scan: the enlarged
 signed distance, the background and the smoothed grey level exist one strip of
@@ -170,3 +170,28 @@ def test_candidate_pass_on_two_threads_equals_one(monkeypatch):
     assert two.idx.size > 100
     assert np.array_equal(two.idx, one.idx) and np.array_equal(two.strength, one.strength)
     assert two.noise_sigma == one.noise_sigma
+
+
+def test_results_do_not_share_the_reused_scratch_arrays():
+    """Two analyses in turn on one thread: the first result is unchanged by the second (its labels are
+    its own pixel list, not the reused label map), and both equal a fresh analysis."""
+    from coupon.segment.pits import PitLabels, PitSettings, analyse_pits
+
+    rgb_a = np.repeat(_scene(seed=21)[..., None], 3, axis=2)
+    rgb_b = np.repeat(_scene(seed=22)[..., None], 3, axis=2)
+    st = PitSettings(px_per_mm=10.0)
+    a = analyse_pits(rgb_a, st)
+    a_labels = np.asarray(a.labels).copy()
+    b = analyse_pits(rgb_b, st)
+    assert isinstance(a.labels, PitLabels) and a.labels.shape == rgb_a.shape[:2]
+    assert np.array_equal(np.asarray(a.labels), a_labels)
+    a2 = analyse_pits(rgb_a, st)
+    assert np.array_equal(np.asarray(a2.labels), a_labels)
+    assert not np.array_equal(np.asarray(b.labels), a_labels)
+    # the map agrees with the table: pixels per pit_id = area x scale^2, ids 1..n
+    counts = np.bincount(a_labels.ravel())[1:]
+    assert len(counts) == len(a.pits) > 20
+    np.testing.assert_allclose(counts, a.pits["area_mm2"].to_numpy() * 100.0)
+    for k in (2, 3, 5):
+        hb, wb = a_labels.shape[0] // k, a_labels.shape[1] // k
+        assert np.array_equal(a.labels.block_centres(k), a_labels[k // 2::k, k // 2::k][:hb, :wb])

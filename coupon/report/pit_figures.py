@@ -76,24 +76,27 @@ def block_centres(img: np.ndarray, k: int) -> np.ndarray:
     return np.ascontiguousarray(img[k // 2::k, k // 2::k][:hb, :wb])
 
 
-def overlay_image(rgb: np.ndarray, labels: np.ndarray, analysed: np.ndarray, pits: pd.DataFrame,
+def overlay_image(rgb: np.ndarray, labels, analysed: np.ndarray, pits: pd.DataFrame,
                   px_per_mm: float, max_side_px: int = 2400) -> np.ndarray:
     """The picture with pits outlined and numbered, as uint8 RGB.
 
     A picture longer than ``max_side_px`` is reduced by an integer factor first
     (6000 px becomes 2000 px) and everything is drawn on the reduced copy with
     OpenCV: outlines, numbers, the dashed border of the analysed region and a
-    legend strip.
+    legend strip.  ``labels``: the (M, N) pit-id map, or the analysis's
+    ``PitLabels`` pixel list (sampled without making the map).
     """
     h, w = labels.shape
     k, f = _overlay_factor((h, w), max_side_px)
+    if k == 1 and not isinstance(labels, np.ndarray):
+        labels = np.asarray(labels)  # a PitLabels pixel list: the full map of a picture this small is cheap
     if k > 1:
         # nearest-pixel sampling (the centre pixel of each k x k block) of picture, labels and region alike:
         # outlines stay exactly on the picture's pixels, and only one pixel in k*k is read and converted to
         # 8 bits (an area reduction of the whole frame took 60 ms of the job at 24 MP, this takes about 8)
         picked = block_centres(np.asarray(rgb), k)
         small = picked if picked.dtype == np.uint8 else cv2.convertScaleAbs(picked, alpha=255.0)
-        lab = block_centres(labels, k)
+        lab = labels.block_centres(k) if hasattr(labels, "block_centres") else block_centres(labels, k)
         an = block_centres(analysed, k)
         size = (small.shape[1], small.shape[0])  # the whole blocks
         scale_xy = 1.0 / k
@@ -168,7 +171,7 @@ def encode_overlay(rgb_u8: np.ndarray, dest: str | Path) -> tuple[Path, bytes]:
     return dest, buf.tobytes()
 
 
-def write_overlay(dest: str | Path, rgb: np.ndarray, labels: np.ndarray, analysed: np.ndarray,
+def write_overlay(dest: str | Path, rgb: np.ndarray, labels, analysed: np.ndarray,
                   pits: pd.DataFrame, px_per_mm: float) -> Path:
     """Write the overlay (atomically); return the path written.
 

@@ -33,6 +33,7 @@ measured from the image's top-left pixel corner: x along columns, y down rows.
 
 from __future__ import annotations
 
+import threading
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
@@ -129,6 +130,74 @@ class PitSettings:
 
 
 @dataclass(frozen=True)
+class PitLabels:
+    """Pit ``pit_id`` per pixel, kept as the list of the pits' pixels.
+
+    The (M, N) int32 map is ``np.asarray(labels)`` (or :meth:`full`): at 24 MP
+    it is 96 MB, and the pits are a few per cent of the pixels, so the result
+    keeps the list and the analysis reuses one scratch map from image to image
+    (:func:`_scratch`).
+
+    Attributes
+    ----------
+    shape : (M, N)
+    idx : (K,) ndarray of int64
+        Flat (row-major) indices of the pits' pixels, increasing.
+    ids : (K,) ndarray of int32
+        Their ``pit_id`` (1..n).
+    """
+
+    shape: tuple[int, int]
+    idx: np.ndarray = field(repr=False)
+    ids: np.ndarray = field(repr=False)
+
+    ndim = 2
+    dtype = np.dtype(np.int32)
+
+    def full(self) -> np.ndarray:
+        out = np.zeros(self.shape, np.int32)
+        out.ravel()[self.idx] = self.ids
+        return out
+
+    def __array__(self, dtype=None, copy=None):
+        out = self.full()
+        return out if dtype is None else out.astype(dtype)
+
+    def max(self) -> int:
+        return int(self.ids.max()) if self.ids.size else 0
+
+    def block_centres(self, k: int) -> np.ndarray:
+        """``full()[k//2::k, k//2::k]`` cut to whole k x k blocks, from the pixel list."""
+        hb, wb = self.shape[0] // k, self.shape[1] // k
+        out = np.zeros((hb, wb), np.int32)
+        r, c = np.divmod(self.idx, self.shape[1])
+        on = (r % k == k // 2) & (c % k == k // 2) & (r < hb * k) & (c < wb * k)
+        out[r[on] // k, c[on] // k] = self.ids[on]
+        return out
+
+
+_SCRATCH = threading.local()
+
+
+def _scratch(name: str, shape: tuple[int, ...], dtype) -> np.ndarray:
+    """A scratch array of this name, shape and type, reused by later calls on the same thread.
+
+    A batch analyses images of one size in turn; a fresh 96 MB label map per
+    image costs page faults on first touch (10 to 150 ms on the test machine,
+    depending on how fragmented its memory is), a reused one none.  Contents are
+    whatever the last user left.
+    """
+    arrays = getattr(_SCRATCH, "arrays", None)
+    if arrays is None:
+        arrays = _SCRATCH.arrays = {}
+    a = arrays.get(name)
+    if a is None or a.shape != tuple(shape) or a.dtype != np.dtype(dtype):
+        arrays.pop(name, None)  # free the old one first: the peak is one array, not two
+        a = arrays[name] = np.empty(shape, dtype)
+    return a
+
+
+@dataclass(frozen=True)
 class PitAnalysis:
     """Result of :func:`analyse_pits` for one image.
 
@@ -136,8 +205,8 @@ class PitAnalysis:
     ----------
     pits : DataFrame
         One row per counted pit, columns :data:`PIT_COLUMNS` (depth NaN without a height map).
-    labels : (M, N) ndarray of int32
-        Pit ``pit_id`` per pixel, 0 elsewhere.
+    labels : PitLabels
+        Pit ``pit_id`` per pixel, 0 elsewhere (``np.asarray(labels)`` is the (M, N) int32 map).
     coupon : (M, N) ndarray of bool
         The coupon region.
     analysed : (M, N) ndarray of bool
@@ -153,7 +222,7 @@ class PitAnalysis:
     """
 
     pits: pd.DataFrame
-    labels: np.ndarray = field(repr=False)
+    labels: PitLabels = field(repr=False)
     coupon: np.ndarray = field(repr=False)
     analysed: np.ndarray = field(repr=False)
     analysed_area_mm2: float
@@ -265,14 +334,15 @@ def grey_level(rgb: np.ndarray) -> np.ndarray:
     return cv2.cvtColor(np.asarray(rgb, dtype=np.float32), cv2.COLOR_RGB2GRAY)
 
 
-def grey_pixels(rgb: np.ndarray) -> np.ndarray:
+def grey_pixels(rgb: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
     """Luma in the pixels' own type: uint8 (0-255) from 8-bit pixels, float32 in [0, 1] otherwise.
 
     The analysis keeps the full-size grey level of an 8-bit picture in 8 bits
     (24 MB at 24 MP instead of 96 MB) and converts to float only the strip
     or reduced copy it works on; :func:`grey_level` is the float version.
     """
-    out = np.empty(rgb.shape[:2], np.uint8 if rgb.dtype == np.uint8 else np.float32)  # see label_components
+    if out is None:
+        out = np.empty(rgb.shape[:2], np.uint8 if rgb.dtype == np.uint8 else np.float32)  # see label_components
     if rgb.dtype == np.uint8:
         return cv2.cvtColor(rgb, cv2.COLOR_RGB2GRAY, dst=out)
     return cv2.cvtColor(np.asarray(rgb, dtype=np.float32), cv2.COLOR_RGB2GRAY, dst=out)
@@ -677,15 +747,15 @@ def fill_holes(mask: np.ndarray) -> np.ndarray:
     return mask | ~outer[lab]
 
 
-def label_components(mask: np.ndarray) -> tuple[int, np.ndarray]:
-    """8-connected components (OpenCV); returns (count, labels int32)."""
+def label_components(mask: np.ndarray, out: np.ndarray | None = None) -> tuple[int, np.ndarray]:
+    """8-connected components (OpenCV); returns (count, labels int32), written into ``out`` when given."""
     if mask.dtype == np.uint8 and mask.flags.c_contiguous:
         m = mask
     else:
         m = mask.view(np.uint8) if mask.dtype == bool and mask.flags.c_contiguous else mask.astype(np.uint8)
     # the labels array comes from numpy, which asks the kernel for huge pages for large arrays: on first
     # touch an array OpenCV allocates itself faulted in 4 kB pages, 20 to 80 ms for 96 MB at 24 MP here
-    lab = np.empty(m.shape, np.int32)
+    lab = np.empty(m.shape, np.int32) if out is None else out
     n, lab = cv2.connectedComponents(m, labels=lab, connectivity=8, ltype=cv2.CV_32S)  # a bool mask is read as it is
     return n - 1, lab
 
@@ -831,9 +901,10 @@ def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, se
     c = cands.above(t_low)
     idx, vals = c.idx, c.strength
     h, w = c.shape
-    mask = np.zeros((h, w), np.uint8)
+    mask = _scratch("pit_mask", (h, w), np.uint8)
+    mask.fill(0)
     mask.ravel()[idx] = 1
-    n0, lab = label_components(mask)
+    n0, lab = label_components(mask, _scratch("pit_labels", (h, w), np.int32))
     lv = lab.ravel()[idx]
     vmax = np.zeros(n0 + 1, np.float32)
     np.maximum.at(vmax, lv, vals)
@@ -1068,10 +1139,10 @@ def measure_pits(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | N
     """Per-pit geometry (and depth) in mm; pits renumbered 1..n in reading order.
 
     Reading order: bands ``band_mm`` tall from the top, left to right inside a band.
-    ``pixels`` (flat indices and labels of every labelled pixel, optionally rows and columns, as returned by
-    :func:`segment_pits`) saves two full-frame passes; ``labels`` is then
-    renumbered in place.  ``sums`` (its moments per label, :func:`_moment_sums`)
-    saves recounting them.
+    ``pixels`` (flat indices and labels of every labelled pixel, optionally rows
+    and columns, as returned by :func:`segment_pits`) saves two full-frame
+    passes; ``labels`` is then renumbered in place.  ``sums`` (their moments per
+    label, :func:`_moment_sums`) saves recounting them.
 
     Returns
     -------
@@ -1079,35 +1150,42 @@ def measure_pits(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | N
     labels : (M, N) int32 relabelled to the table's ``pit_id``
     details : dict (reference-surface fit when a height map was given)
     """
+    in_place = pixels is not None
+    if pixels is None:
+        idx = np.flatnonzero(labels)
+        pixels = (idx, labels.ravel()[idx])
+    table, lut, details = _measure(labels, px_per_mm, height_mm, analysed, band_mm, pixels, sums)
+    if in_place:
+        labels.ravel()[pixels[0]] = lut[pixels[1]]
+        return table, labels, details
+    return table, lut[labels], details
+
+
+def _measure(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | None, analysed: np.ndarray | None,
+             band_mm: float, pixels: tuple[np.ndarray, ...], sums: np.ndarray | None
+             ) -> tuple[pd.DataFrame, np.ndarray, dict]:
+    """:func:`measure_pits` on a pixel list; returns the table, the renumbering (old label -> pit_id,
+    0 for none) and the details.  ``labels`` is read only (its shape, and which pixels are off pits
+    for the reference surface)."""
     s = check_px_per_mm(px_per_mm)
     details: dict = {}
     if height_mm is not None:
         surface = analysed if analysed is not None else np.ones(labels.shape, bool)
         coef, details = surface_reference(height_mm, surface, exclude=labels)
-    if pixels is None:
-        mom = object_moments(labels)
-    elif sums is not None:
+    if sums is not None:
         mom = _moments_from_sums(sums) | {"_idx": pixels[0], "_lab": pixels[1], "_rc": pixels[2:4]}
     else:
         mom = _moments(pixels[0], pixels[1], int(pixels[1].max()) if pixels[1].size else 0, labels.shape[1])
     present = np.flatnonzero(mom["area"] > 0)
     present = present[present > 0]
+    lut = np.zeros(len(mom["area"]), np.int32)
     if present.size == 0:
         empty = pd.DataFrame({c: pd.Series(dtype=float) for c in PIT_COLUMNS}).astype({"pit_id": int})
-        if pixels is None:
-            return empty, np.zeros_like(labels), details
-        labels.ravel()[pixels[0]] = 0
-        return empty, labels, details
+        return empty, lut, details
     row, col = mom["row"][present], mom["col"][present]
     order = np.lexsort((col, np.floor(row / (band_mm * s))))
     old = present[order]
-    lut = np.zeros(len(mom["area"]), np.int32)
     lut[old] = np.arange(1, len(old) + 1, dtype=np.int32)
-    if pixels is None:
-        new_labels = lut[labels]
-    else:
-        new_labels = labels
-        new_labels.ravel()[pixels[0]] = lut[pixels[1]]
     area = mom["area"][old] / s**2
     major, minor = mom["major"][old] / s, mom["minor"][old] / s
     depth = np.full(len(old), np.nan)
@@ -1132,7 +1210,7 @@ def measure_pits(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | N
         "aspect_ratio": major / np.maximum(minor, 1.0 / s),
         "depth_mm": depth,
     })
-    return table, new_labels, details
+    return table, lut, details
 
 
 # -- all steps -------------------------------------------------------------------
@@ -1161,7 +1239,8 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
         Blank or badly exposed picture, no coupon found, edge band larger than the
         coupon, height map of another size.
     """
-    grey = grey_pixels(rgb)  # 8-bit for an 8-bit picture: no full-frame float array from here on
+    # 8-bit for an 8-bit picture: no full-frame float array from here on
+    grey = grey_pixels(rgb, _scratch("pit_grey", rgb.shape[:2], np.uint8 if rgb.dtype == np.uint8 else np.float32))
     check_exposure(rgb, grey)
     if height_mm is not None and height_mm.shape != grey.shape:
         raise AnalysisError(
@@ -1173,7 +1252,7 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
         rect = rectify_view(rgb, homography_px_to_mm, s, height_mm)  # None when square-on: no float copy
         if rect is not None:
             rgb, height_mm, rectified = rect
-            grey = grey_pixels(rgb)
+            grey = grey_pixels(rgb, _scratch("pit_grey", rgb.shape[:2], np.float32))
     region = find_region(grey, settings.edge_mm * s, settings.whole_frame)
     coupon, analysed = region.coupon, region.analysed
     area_px = int(np.count_nonzero(analysed))
@@ -1190,10 +1269,13 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
     cands = candidate_pixels(grey, background_map(grey, coupon, settings.flatten_mm * s), coupon, analysed,
                              settings.look, settings.min_contrast)
     del grey
-    labels, details, pixels, sums = segment_pits(cands, coupon, analysed, settings)
+    work, details, pixels, sums = segment_pits(cands, coupon, analysed, settings)
     del cands
     # pit walls just outside the outlines are clipped as outliers by the reference fit
-    table, labels, ref = measure_pits(labels, s, height_mm, analysed, pixels=pixels, sums=sums)
+    table, lut, ref = _measure(work, s, height_mm, analysed, 5.0, pixels, sums)
+    ids = lut[pixels[1]]
+    on = ids > 0
+    labels = PitLabels(work.shape, pixels[0][on], ids[on])
     if ref:
         details["reference_surface"] = ref
         check_height_relief(ref, height_unit)
