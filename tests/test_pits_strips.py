@@ -195,3 +195,24 @@ def test_results_do_not_share_the_reused_scratch_arrays():
     for k in (2, 3, 5):
         hb, wb = a_labels.shape[0] // k, a_labels.shape[1] // k
         assert np.array_equal(a.labels.block_centres(k), a_labels[k // 2::k, k // 2::k][:hb, :wb])
+
+
+def test_run_sums_equal_pixel_sums():
+    """Moments summed over horizontal runs equal the sums over the runs' pixels, exactly (integer sums)."""
+    from coupon.segment.pits import _moment_sums, label_components, pixel_runs
+
+    rng = np.random.default_rng(4)
+    mask = rng.random((300, 411)) < 0.35
+    mask[:, -1] = mask[:, 0] = True  # runs that end on the last column and restart on the next row
+    n, lab = label_components(mask)
+    idx = np.flatnonzero(lab)
+    runs = pixel_runs(idx, lab.shape[1])
+    # the runs cover the pixels exactly, each within one row and one object
+    ends = runs.start + runs.length
+    assert runs.start[0] == 0 and ends[-1] == idx.size and np.array_equal(runs.start[1:], ends[:-1])
+    rebuilt = np.concatenate([np.arange(r * 411 + c, r * 411 + c + m) for r, c, m in
+                              zip(runs.row, runs.col0, runs.length)])
+    assert np.array_equal(rebuilt, idx)
+    run_lab = lab.ravel()[idx[runs.start]]
+    assert np.array_equal(np.repeat(run_lab, runs.length), lab.ravel()[idx])
+    assert np.array_equal(runs.sums(run_lab, n + 1), _moment_sums(idx, lab.ravel()[idx], n + 1, lab.shape[1]))

@@ -891,7 +891,7 @@ def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, se
     box or moments (:func:`plain_disc`) are not those of one round pit are
     offered to :func:`_split_object`, which decides.  Returns the
     labels, the details, the pixel list of the labelled pixels (flat indices,
-    label, row, column) and the raw pixel moments per label (:func:`_moment_sums`; zero for
+    label) and the raw pixel moments per label (:func:`_moment_sums`; zero for
     dropped labels).
     """
     s = settings.px_per_mm
@@ -905,19 +905,23 @@ def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, se
     mask.fill(0)
     mask.ravel()[idx] = 1
     n0, lab = label_components(mask, _scratch("pit_labels", (h, w), np.int32))
-    lv = lab.ravel()[idx]
+    # per-object statistics over horizontal runs (each run lies in one object): labels read at the
+    # runs' first pixels only
+    runs = pixel_runs(idx, w)
+    lv = lab.ravel()[idx[runs.start]]
     vmax = np.zeros(n0 + 1, np.float32)
-    np.maximum.at(vmax, lv, vals)
-    vmean = np.bincount(lv, vals, minlength=n0 + 1) / np.maximum(np.bincount(lv, minlength=n0 + 1), 1)
+    np.maximum.at(vmax, lv, np.maximum.reduceat(vals, runs.start))
+    vmean = np.bincount(lv, np.add.reduceat(vals, runs.start, dtype=np.float64), minlength=n0 + 1) / np.maximum(
+        np.bincount(lv, runs.length, minlength=n0 + 1), 1)
     # the outline sits half-way between the surface (0) and the object's mean contrast: the middle
     # of its blurred edge, whatever the pit's darkness; objects never stronger than 1.5 x the
     # threshold are noise or texture
     level = np.maximum(0.5 * vmean, t_low)
     level[vmax < 1.5 * t_low] = np.inf
-    kept = vals >= level[lv]
+    kept = vals >= np.repeat(level[lv], runs.length)
     kidx = idx[kept]  # flat indices of the pixels kept
     mask.ravel()[idx[~kept]] = 0
-    del idx, vals, lv, kept, c
+    del idx, vals, lv, kept, c, runs
     if settings.look == "bright-rim":
         keep = fill_holes(mask.view(bool)) & coupon  # the pit is the lip and what it encloses
         kidx = np.flatnonzero(keep)
@@ -926,9 +930,10 @@ def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, se
     n1, lab = cv2.connectedComponents(mask, labels=lab, connectivity=8, ltype=cv2.CV_32S)
     del mask
     n1 = int(n1)
-    kl = lab.ravel()[kidx]
-    kr, kc = np.divmod(kidx, w)  # rows and columns of the kept pixels, for moments, boxes and depths
-    sums = _moment_sums(kidx, kl, n1, w, (kr, kc))
+    runs = pixel_runs(kidx, w)
+    run_lab = lab.ravel()[kidx[runs.start]]
+    kl = np.repeat(run_lab, runs.length)
+    sums = runs.sums(run_lab, n1)
     area = sums[0]
     big = area >= min_px
     big[0] = False
@@ -936,13 +941,13 @@ def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, se
     split_made = 0
     next_id = n1
     if settings.split_touching:
-        # bounding boxes from the pixel list (much faster than over the full frame)
+        # bounding boxes from the runs
         rmin = np.full(n1, h, np.int64)
         cmin = np.full(n1, w, np.int64)
         rmax = np.zeros(n1, np.int64)
         cmax = np.zeros(n1, np.int64)
-        np.minimum.at(rmin, kl, kr), np.minimum.at(cmin, kl, kc)
-        np.maximum.at(rmax, kl, kr), np.maximum.at(cmax, kl, kc)
+        np.minimum.at(rmin, run_lab, runs.row), np.minimum.at(cmin, run_lab, runs.col0)
+        np.maximum.at(rmax, run_lab, runs.row), np.maximum.at(cmax, run_lab, runs.col0 + runs.length - 1)
         bw, bh = cmax - cmin + 1, rmax - rmin + 1
         extent = area / np.maximum(bw * bh, 1)
         elong = np.maximum(bw, bh) / np.maximum(np.minimum(bw, bh), 1)
@@ -969,12 +974,13 @@ def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, se
                 split_made += extra
                 split_ids.append(k)
         if split_ids:
-            # the split objects' pixels take their new labels, and their moments are recounted
+            # the split objects' pixels take their new labels (a run may now cross two parts), and
+            # their moments are recounted pixel by pixel
             was_split = np.zeros(n1, bool)
             was_split[split_ids] = True
             ps = np.flatnonzero(was_split[kl])
             kl[ps] = lab.ravel()[kidx[ps]]
-            redo = _moment_sums(kidx[ps], kl[ps], next_id, w, (kr[ps], kc[ps]))
+            redo = _moment_sums(kidx[ps], kl[ps], next_id, w)
             sums = np.concatenate([sums, np.zeros((sums.shape[0], next_id - n1))], axis=1)
             affected = np.concatenate([was_split, np.ones(next_id - n1, bool)])
             sums[:, affected] = redo[:, affected]
@@ -994,7 +1000,7 @@ def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, se
         "dropped_small": too_small, "split_added": int(split_made), "dropped_cut_by_border": int(outside.size),
         "min_pit_px": float(min_px),
     }
-    return lab, details, (kidx[on], kl[on], kr[on], kc[on]), sums
+    return lab, details, (kidx[on], kl[on]), sums
 
 
 # -- 5. measurement --------------------------------------------------------------
@@ -1107,6 +1113,52 @@ def _moment_sums(idx: np.ndarray, lab: np.ndarray, n: int, ncols: int,
     return np.stack([np.bincount(lab, minlength=n).astype(np.float64), np.bincount(lab, r, n),
                      np.bincount(lab, c, n), np.bincount(lab, r * r, n), np.bincount(lab, c * c, n),
                      np.bincount(lab, r * c, n)])
+
+
+@dataclass(frozen=True)
+class Runs:
+    """Horizontal runs of a sorted pixel list: consecutive pixels of one row, from :func:`pixel_runs`.
+
+    Every pixel of a run belongs to the same 8-connected (indeed 4-connected)
+    object, so per-object sums over pixels are sums over runs: a pit of 40 px
+    across is 40 runs instead of 1250 pixels.
+
+    Attributes
+    ----------
+    start : (R,) ndarray of intp
+        Position in the pixel list of each run's first pixel.
+    length : (R,) ndarray of intp
+    row, col0 : (R,) ndarray of int64
+        Row and first column of each run.
+    """
+
+    start: np.ndarray
+    length: np.ndarray
+    row: np.ndarray
+    col0: np.ndarray
+
+    def sums(self, lab: np.ndarray, n: int) -> np.ndarray:
+        """:func:`_moment_sums` of the pixels, ``lab`` the label of each run (exact: integer sums in float64)."""
+        r, c0 = self.row.astype(np.float64), self.col0.astype(np.float64)
+        m = self.length.astype(np.float64)
+        c1 = c0 + m - 1.0
+        sc = 0.5 * m * (c0 + c1)  # sum of the columns c0..c1
+        scc = (c1 * (c1 + 1) * (2 * c1 + 1) - (c0 - 1) * c0 * (2 * c0 - 1)) / 6.0  # sum of their squares
+        return np.stack([np.bincount(lab, m, n), np.bincount(lab, r * m, n), np.bincount(lab, sc, n),
+                         np.bincount(lab, r * r * m, n), np.bincount(lab, scc, n), np.bincount(lab, r * sc, n)])
+
+
+def pixel_runs(idx: np.ndarray, ncols: int) -> Runs:
+    """The horizontal runs of ``idx`` (flat indices, strictly increasing)."""
+    if idx.size == 0:
+        z = np.zeros(0, np.intp)
+        return Runs(z, z, z.astype(np.int64), z.astype(np.int64))
+    brk = np.diff(idx) != 1
+    brk |= idx[1:] % ncols == 0  # a new row starts a new run
+    start = np.concatenate([[0], np.flatnonzero(brk) + 1])
+    length = np.diff(np.concatenate([start, [idx.size]]))
+    row, col0 = np.divmod(idx[start], ncols)
+    return Runs(start, length, row, col0)
 
 
 def _moments_from_sums(sums: np.ndarray) -> dict[str, np.ndarray]:
