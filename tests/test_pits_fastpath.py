@@ -15,21 +15,39 @@ from coupon.io.atomic import write_float_tiff
 from coupon.io.heightmap import load_height_map
 from coupon.ratings.scales import ASTM_G46_SIZE
 from coupon.report.pit_figures import PIT_PALETTE, overlay_image, size_class
-from coupon.segment.pits import _CLIPPED, _clipped_fraction, label_components, measure_pits, surface_reference
+from coupon.segment.pits import (_CLIPPED, _percentiles, clipped_fraction, exposure_sample, label_components,
+                                 measure_pits, surface_reference)
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2])
-def test_clipped_fraction_matches_numpy(seed):
-    # reference: numpy, fraction of the selected pixels with any channel at or above the clip level
+def test_exposure_sample_and_clipped_fraction_match_numpy(seed):
+    # reference: numpy slicing (the centre pixel of each block) and any() over the channels
     rng = np.random.default_rng(seed)
-    rgb = rng.uniform(0.9, 1.0, (123, 77, 3)).astype(np.float32)
-    where = rng.random((123, 77)) < 0.6
-    ref = float((rgb[where] >= _CLIPPED).any(axis=1).mean())
-    assert _clipped_fraction(rgb, where) == pytest.approx(ref, abs=1e-12)
-    # a strided view (as analyse_pits passes it) gives the same
-    assert _clipped_fraction(rgb[::2, ::3], where[::2, ::3]) == pytest.approx(
-        float((rgb[::2, ::3][where[::2, ::3]] >= _CLIPPED).any(axis=1).mean()), abs=1e-12)
-    assert _clipped_fraction(rgb, np.zeros((123, 77), bool)) == 0.0
+    rgb = rng.uniform(0.9, 1.0, (1230, 770, 3)).astype(np.float32)
+    grey = cv2.cvtColor(rgb, cv2.COLOR_RGB2GRAY)
+    g, bright = exposure_sample(rgb, grey, samples=20_000)
+    k = int(np.sqrt(rgb.shape[0] * rgb.shape[1] / 20_000))
+    hb, wb = rgb.shape[0] // k, rgb.shape[1] // k
+    assert np.array_equal(g, grey[k // 2::k, k // 2::k][:hb, :wb])
+    assert np.array_equal(bright, rgb[k // 2::k, k // 2::k][:hb, :wb].max(axis=2))
+    where = rng.random(bright.shape) < 0.6
+    sub = rgb[k // 2::k, k // 2::k][:hb, :wb]
+    ref = float((sub[where] >= _CLIPPED).any(axis=1).mean())
+    assert clipped_fraction(bright, where) == pytest.approx(ref, abs=1e-12)
+    assert clipped_fraction(bright, np.zeros(bright.shape, bool)) == 0.0
+    u8 = np.clip(np.rint(rgb * 255), 0, 255).astype(np.uint8)
+    _, b8 = exposure_sample(u8, cv2.cvtColor(u8, cv2.COLOR_RGB2GRAY), samples=20_000)
+    assert np.array_equal(b8, u8[k // 2::k, k // 2::k][:hb, :wb].max(axis=2))
+
+
+def test_percentiles_of_eight_bit_values_match_numpy():
+    # reference: numpy.percentile (linear interpolation), from the histogram without sorting
+    rng = np.random.default_rng(5)
+    for n in (1, 2, 7, 1000, 250_001):
+        v = rng.integers(0, 256, n).astype(np.uint8)
+        qs = [0, 1, 37.5, 95, 99, 100]
+        np.testing.assert_allclose(_percentiles(v, qs), np.percentile(v.astype(np.float64) / 255.0, qs),
+                                   rtol=0, atol=1e-12)
 
 
 def test_reference_surface_matches_lstsq_on_a_clean_quadratic():
@@ -181,5 +199,6 @@ def test_clipped_fraction_on_eight_bit_pixels():
     # 254 is the first 8-bit level at or above the float clip level (254 / 255 = 0.9961 >= 0.995 > 253 / 255)
     u8 = np.array([[[253, 0, 0], [254, 0, 0], [0, 0, 255], [10, 20, 30]]], np.uint8)
     where = np.ones((1, 4), bool)
-    assert _clipped_fraction(u8, where) == pytest.approx(0.5)
-    assert _clipped_fraction(u8.astype(np.float32) / np.float32(255), where) == pytest.approx(0.5)
+    for px in (u8, u8.astype(np.float32) / np.float32(255)):
+        _, bright = exposure_sample(px, cv2.cvtColor(px, cv2.COLOR_RGB2GRAY))
+        assert clipped_fraction(bright, where) == pytest.approx(0.5)

@@ -213,6 +213,11 @@ def test_run_sums_equal_pixel_sums():
     rebuilt = np.concatenate([np.arange(r * 411 + c, r * 411 + c + m) for r, c, m in
                               zip(runs.row, runs.col0, runs.length)])
     assert np.array_equal(rebuilt, idx)
+    assert (runs.col0 + runs.length <= 411).all()  # no run wraps onto the next row
+    for w in (1, 2, 7):  # narrow frames: every row break found by the row search
+        sub = np.flatnonzero(rng.random(500) < 0.7)
+        r = pixel_runs(sub, w)
+        assert (r.col0 + r.length <= w).all() and r.length.sum() == sub.size
     run_lab = lab.ravel()[idx[runs.start]]
     assert np.array_equal(np.repeat(run_lab, runs.length), lab.ravel()[idx])
     assert np.array_equal(runs.sums(run_lab, n + 1), _moment_sums(idx, lab.ravel()[idx], n + 1, lab.shape[1]))
