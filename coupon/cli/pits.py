@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import math
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import ThreadPoolExecutor, wait
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
@@ -53,8 +53,9 @@ SUMMARY_COLUMNS = [
     "g46_size", "g46_depth", "max_depth_mm", "corrosion_rate_mm_y", "corrosion_rate_mpy", "average_penetration_mm",
     "pitting_factor", "overlay", "status",
 ]
-# 3: noise estimate from 250k samples; 2: touching pits split more often, 12.4 mm background window
-COMMAND_VERSION = 4  # 4: the clipped fraction in the JSON comes from a quarter-million-pixel sample
+# 3: noise estimate from 250k samples; 2: touching pits split more often, 12.4 mm background window;
+# 4: the clipped fraction in the JSON comes from a quarter-million-pixel sample
+COMMAND_VERSION = 5  # 5: exposure and clipping sampled at block centres (the recorded clipped_pct moves slightly)
 CAUTION = ("Ratings and rates support, and do not replace, a qualified corrosion engineer and the governing "
            "standard (ASTM G1, G46) or specification; structural decisions need measured pit depths and "
            "licensed judgement.")
@@ -107,7 +108,7 @@ def pit_rows_for_image(path: Path, job: PitJob) -> dict:
             read_future = helpers.submit(read_height_map_mm, hpath, job.height_unit)
             if known is None:
                 hash_future = helpers.submit(file_sha256, hpath)
-        rows = _pit_rows(path, job, hpath, known, read_future, hash_future)
+        rows = _pit_rows(path, job, hpath, known, read_future, hash_future, helpers)
     except BaseException:
         helpers.shutdown(wait=False, cancel_futures=True)  # a failed image does not wait for the map's hash
         raise
@@ -115,7 +116,8 @@ def pit_rows_for_image(path: Path, job: PitJob) -> dict:
     return rows
 
 
-def _pit_rows(path: Path, job: PitJob, hpath: Path | None, known: str | None, read_future, hash_future) -> dict:
+def _pit_rows(path: Path, job: PitJob, hpath: Path | None, known: str | None, read_future, hash_future,
+              helpers: ThreadPoolExecutor) -> dict:
     img = load_image(path, max_pixels=job.max_pixels)  # an image error comes first, as in a serial read
     height = None
     if hpath is not None:
@@ -139,9 +141,18 @@ def _pit_rows(path: Path, job: PitJob, hpath: Path | None, known: str | None, re
             "check --height-unit and that the map is registered to the image", hpath)
     stem = path.stem
     shown = res.rectified_rgb if res.rectified_rgb is not None else pixels
-    overlay = write_overlay(job.out_dir / f"{stem}_pits.png", shown, res.labels, res.analysed, res.pits,
-                            job.settings.px_per_mm)
-    hist = size_histogram_figure(res.pits, job.out_dir / f"{stem}_pit_sizes.png", title=f"{path.name}: pit sizes")
+    # the overlay is drawn and encoded on the helper thread (queued after the height map's hash, which
+    # is done by now) while this thread draws the histogram and builds the rows
+    overlay_future = helpers.submit(write_overlay, job.out_dir / f"{stem}_pits.png", shown, res.labels,
+                                    res.analysed, res.pits, job.settings.px_per_mm)
+    try:
+        hist = size_histogram_figure(res.pits, job.out_dir / f"{stem}_pit_sizes.png",
+                                     title=f"{path.name}: pit sizes")
+        pit_rows = [{"image": str(path)} | r for r in res.pits.to_dict("records")]
+    except BaseException:
+        wait([overlay_future])  # no overlay is left being written behind a failed image
+        raise
+    overlay = overlay_future.result()
     record = {
         "tool": "coupon pits", "coupon_version": __version__, "command_version": COMMAND_VERSION,
         "image": {"path": str(path), "sha256": img.sha256, "size_px": list(img.shape_rc[::-1]),
@@ -171,7 +182,6 @@ def _pit_rows(path: Path, job: PitJob, hpath: Path | None, known: str | None, re
     }
     js = write_json(job.out_dir / f"{stem}_pits.json", record)
     summary_row = {"image": str(path)} | summary | {"overlay": str(overlay), "status": "ok"}
-    pit_rows = [{"image": str(path)} | r for r in res.pits.to_dict("records")]
     return {"summary": summary_row, "pits": pit_rows, "outputs": [overlay, hist, js], "sha256": img.sha256,
             "warnings": warnings}
 
