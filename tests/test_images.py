@@ -213,3 +213,15 @@ def test_unreadable_permissions(tmp_path, monkeypatch):
 
 def test_folder_is_not_an_image(tmp_path):
     _check_refused(tmp_path, "folder")
+
+
+def test_colour_jpeg_decoded_straight_to_rgb_equals_opencv_bgr_decode(tmp_path):
+    # reference: OpenCV's own BGR decode of the same file, channels swapped
+    rng = np.random.default_rng(9)
+    arr = cv2.GaussianBlur(rng.integers(0, 256, (240, 320, 3), dtype=np.uint8), (0, 0), 2)
+    path = tmp_path / "c.jpg"
+    cv2.imwrite(str(path), arr, [cv2.IMWRITE_JPEG_QUALITY, 90])
+    ref = cv2.cvtColor(cv2.imread(str(path), cv2.IMREAD_UNCHANGED), cv2.COLOR_BGR2RGB)
+    img = load_image(path)
+    assert img.rgb_u8.dtype == np.uint8 and np.array_equal(img.rgb_u8, ref)
+    assert img.notes == ()

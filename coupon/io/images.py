@@ -153,12 +153,14 @@ def _read_exif(im: Image.Image) -> Image.Exif:
     return im.getexif()
 
 
-def _header(data: bytes, path: Path, max_pixels: int) -> tuple[int, _dt.datetime | None]:
-    """Check the header before decoding; return (EXIF orientation, capture time)."""
+def _header(data: bytes, path: Path, max_pixels: int) -> tuple[int, _dt.datetime | None, bool]:
+    """Check the header before decoding; return (EXIF orientation, capture time, whether the file is an
+    8-bit three-channel JPEG)."""
     try:
         with Image.open(io.BytesIO(data)) as im:
             width, height = im.size
             fmt = im.format
+            rgb_jpeg = fmt == "JPEG" and im.mode == "RGB"
             if width > 0 and height > 0 and width * height <= max_pixels:
                 exif = _read_exif(im)
     except UnidentifiedImageError:
@@ -185,7 +187,7 @@ def _header(data: bytes, path: Path, max_pixels: int) -> tuple[int, _dt.datetime
         capture = None
     if capture is None:
         capture = _parse_exif_time(exif.get(_EXIF_DATETIME))
-    return orientation, capture
+    return orientation, capture, rgb_jpeg
 
 
 def _apply_orientation(arr: np.ndarray, orientation: int) -> np.ndarray:
@@ -278,6 +280,10 @@ def to_uint8(rgb: np.ndarray) -> np.ndarray:
     return np.clip(np.rint(np.asarray(rgb, dtype=np.float32) * 255.0), 0, 255).astype(np.uint8)
 
 
+#: OpenCV's flags for decoding straight to 8-bit RGB without applying EXIF orientation (None before 4.10).
+_IMREAD_RGB = (cv2.IMREAD_COLOR_RGB | cv2.IMREAD_IGNORE_ORIENTATION) if hasattr(cv2, "IMREAD_COLOR_RGB") else None
+
+
 def load_image(path: str | os.PathLike, max_pixels: int = DEFAULT_MAX_PIXELS) -> LoadedImage:
     """Load an image file into the package convention.
 
@@ -299,14 +305,19 @@ def load_image(path: str | os.PathLike, max_pixels: int = DEFAULT_MAX_PIXELS) ->
     """
     path = Path(path)
     data = _read_bytes(path)
-    orientation, capture = _header(data, path, max_pixels)
+    orientation, capture, rgb_jpeg = _header(data, path, max_pixels)
     buf = np.frombuffer(data, dtype=np.uint8)
-    decoded = cv2.imdecode(buf, cv2.IMREAD_UNCHANGED)
+    # a colour JPEG is decoded straight to RGB (OpenCV 4.10 or later): no BGR-to-RGB pass over the frame
+    # and no second frame-sized array; EXIF orientation is applied below, as for every other file
+    direct = rgb_jpeg and _IMREAD_RGB is not None
+    decoded = cv2.imdecode(buf, _IMREAD_RGB if direct else cv2.IMREAD_UNCHANGED)
     if decoded is None or decoded.size == 0:
         raise ImageLoadError("corrupt or truncated image data (decoder gave no pixels)", path)
     notes: list[str] = []
     channels = 1 if decoded.ndim == 2 else decoded.shape[2]
-    if channels == 1:
+    if direct:
+        pass
+    elif channels == 1:
         notes.append("greyscale promoted to RGB")
     elif channels == 2:
         notes.append("greyscale promoted to RGB; alpha channel dropped")
