@@ -209,3 +209,31 @@ def test_background_writes_finish_and_report_failures(tmp_path):
 
 def _fail_write():
     raise OSError("disk full")
+
+
+def test_prefetch_loads_ahead_in_order_and_keeps_errors_with_their_item():
+    """The next frame is loaded on a helper thread; each item gets its own load's result or error."""
+    import threading
+
+    from coupon.errors import ImageLoadError
+    from coupon.io.batch import Prefetch
+
+    seen = []
+
+    def load(item):
+        seen.append((item, threading.current_thread().name))
+        if item == "bad":
+            raise ImageLoadError("corrupt", item)
+        return item.upper()
+
+    items = ["a", "b", "bad", "c"]
+    got = []
+    with Prefetch(items, load) as ahead:
+        for it in items:
+            try:
+                got.append(ahead(it))
+            except ImageLoadError as exc:
+                got.append(f"error {exc}")
+    assert got == ["A", "B", "error bad: corrupt", "C"]
+    assert sorted(i for i, _ in seen) == sorted(items)  # each loaded once
+    assert [t.startswith("coupon-prefetch") for i, t in seen if i != "a"] == [True] * 3  # all but the first ahead

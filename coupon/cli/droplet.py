@@ -31,8 +31,8 @@ from coupon.cli.common import (
 from coupon.errors import AnalysisError, CouponError
 from coupon.io import frametimes as ft
 from coupon.io.atomic import BackgroundWrites, write_csv, write_float_tiff, write_json
-from coupon.io.batch import ResumeLedger, run_batch, settings_hash
-from coupon.io.images import expand_image_paths, load_image, try_sha256
+from coupon.io.batch import Prefetch, ResumeLedger, run_batch, settings_hash
+from coupon.io.images import LoadedImage, expand_image_paths, load_image, try_sha256
 from coupon.segment.droplet import (
     MEASURES,
     DropletSettings,
@@ -68,13 +68,18 @@ class DropletJob:
     def __call__(self, path: Path) -> dict:
         return frame_rows(path, self)
 
+    def load(self, path: Path) -> LoadedImage:
+        return load_image(path, max_pixels=self.max_pixels)
 
-def frame_rows(path: Path, job: DropletJob) -> dict:
+
+def frame_rows(path: Path, job: DropletJob, img: LoadedImage | None = None) -> dict:
     """The rows one frame contributes: ``{"row": droplet.csv row, "radial": radial_profile.csv rows}``.
 
-    ``frame`` and ``t_min`` are filled in once the whole series' times are known.
+    ``frame`` and ``t_min`` are filled in once the whole series' times are known.  ``img``: the frame
+    already loaded (by a :class:`~coupon.io.batch.Prefetch`), or None to load it here.
     """
-    img = load_image(path, max_pixels=job.max_pixels)
+    if img is None:
+        img = job.load(path)
     if job.expected_shape_rc is not None and img.shape_rc != tuple(job.expected_shape_rc):
         er, ec = job.expected_shape_rc
         raise AnalysisError(
@@ -248,9 +253,11 @@ def droplet(frames, profile_path, out_dir, px_per_mm, acidic_below, basic_above,
     if len(todo) < len(paths):
         click.echo(f"{len(paths) - len(todo)} frame(s) already analysed (use --force to redo)")
     failed = 0
-    # in-process, pictures are encoded on the second core while the next frame is analysed
-    with BackgroundWrites() as writes:
-        for out in run_batch(todo, job, workers=workers, label="droplet frames"):
+    # in-process, the next frame decodes and this frame's pictures are encoded on the second core while
+    # this frame is analysed
+    with BackgroundWrites() as writes, Prefetch(todo if workers <= 1 else [], job.load) as ahead:
+        func = (lambda p: frame_rows(p, job, ahead(p))) if workers <= 1 else job
+        for out in run_batch(todo, func, workers=workers, label="droplet frames"):
             if out.ok:
                 r = out.result
                 outputs = [o for o in (r["row"]["ph_tiff"], r["row"]["ph_png"]) if o]

@@ -106,6 +106,43 @@ def run_batch(
             bar.__exit__(None, None, None)
 
 
+class Prefetch:
+    """Load the next input of an in-process batch on a helper thread while this one is processed.
+
+    ``prefetch(item)`` returns ``load(item)``: taken from the helper thread when it
+    was loaded ahead, and it starts loading the item after it in ``items``.
+    Decoders release the GIL, so the next frame decodes on the second core while
+    the first analyses this one.  A load error is raised for its own item, when
+    that item is asked for.  At most one input is held ahead.
+    """
+
+    def __init__(self, items: Iterable[Any], load: Callable[[Any], Any]):
+        from concurrent.futures import ThreadPoolExecutor
+
+        self.items = list(items)
+        self._next = {a: b for a, b in zip(self.items, self.items[1:])}
+        self._load = load
+        self._ahead: dict = {}
+        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="coupon-prefetch")
+
+    def __call__(self, item: Any) -> Any:
+        fut = self._ahead.pop(item, None)
+        nxt = self._next.get(item)
+        if nxt is not None and nxt not in self._ahead:
+            self._ahead[nxt] = self._pool.submit(self._load, nxt)
+        return self._load(item) if fut is None else fut.result()
+
+    def close(self) -> None:
+        self._pool.shutdown(wait=True, cancel_futures=True)
+        self._ahead.clear()
+
+    def __enter__(self) -> "Prefetch":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+
 def settings_hash(settings: dict) -> str:
     """Stable short hash of a settings dict (what would change the numbers)."""
     text = json.dumps(settings, sort_keys=True, default=str)
