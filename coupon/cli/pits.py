@@ -25,9 +25,9 @@ from coupon.cli.common import (
 )
 from coupon.errors import AnalysisError, CouponError
 from coupon.io.atomic import write_csv, write_json
-from coupon.io.batch import ResumeLedger, run_batch, settings_hash
+from coupon.io.batch import Prefetch, ResumeLedger, run_batch, settings_hash
 from coupon.io.heightmap import HEIGHT_UNITS, check_height_shape, read_height_map_mm
-from coupon.io.images import expand_image_paths, file_sha256, load_image, try_sha256
+from coupon.io.images import LoadedImage, expand_image_paths, file_sha256, load_image, try_sha256
 from coupon.io.tables import read_previous
 from coupon.ratings import mass_loss as ml
 from coupon.ratings.pitting import MassLoss, summarise_pits
@@ -86,9 +86,14 @@ class PitJob:
     def __call__(self, path: Path) -> dict:
         return pit_rows_for_image(path, self)
 
+    def load(self, path: Path) -> LoadedImage:
+        return load_image(path, max_pixels=self.max_pixels)
 
-def pit_rows_for_image(path: Path, job: PitJob) -> dict:
+
+def pit_rows_for_image(path: Path, job: PitJob, img: LoadedImage | None = None) -> dict:
     """Analyse one image and write its figures and JSON; return its rows.
+
+    ``img``: the image already loaded (by a :class:`~coupon.io.batch.Prefetch`), or None to load it here.
 
     Returns
     -------
@@ -108,7 +113,7 @@ def pit_rows_for_image(path: Path, job: PitJob) -> dict:
             read_future = helpers.submit(read_height_map_mm, hpath, job.height_unit)
             if known is None:
                 hash_future = helpers.submit(file_sha256, hpath)
-        rows = _pit_rows(path, job, hpath, known, read_future, hash_future, helpers)
+        rows = _pit_rows(path, job, hpath, known, read_future, hash_future, helpers, img)
     except BaseException:
         helpers.shutdown(wait=False, cancel_futures=True)  # a failed image does not wait for the map's hash
         raise
@@ -117,8 +122,9 @@ def pit_rows_for_image(path: Path, job: PitJob) -> dict:
 
 
 def _pit_rows(path: Path, job: PitJob, hpath: Path | None, known: str | None, read_future, hash_future,
-              helpers: ThreadPoolExecutor) -> dict:
-    img = load_image(path, max_pixels=job.max_pixels)  # an image error comes first, as in a serial read
+              helpers: ThreadPoolExecutor, img: LoadedImage | None) -> dict:
+    if img is None:
+        img = job.load(path)  # an image error comes first, as in a serial read
     height = None
     if hpath is not None:
         stored_shape, height, value_error = read_future.result()
@@ -336,7 +342,10 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
         todo.append(p)
     new_pits: dict[str, list[dict]] = {}
     job = replace(job, height_sha256=tuple(height_hashes.items()))
-    for out in run_batch(todo, job, workers=workers, label="Pits"):
+    # in-process, the next image decodes on a helper thread while this one is analysed
+    ahead = Prefetch(todo if workers <= 1 else [], job.load)
+    func = (lambda p: pit_rows_for_image(p, job, ahead(p))) if workers <= 1 else job
+    for out in run_batch(todo, func, workers=workers, label="Pits"):
         key = str(out.item)
         if out.ok:
             r = out.result
@@ -360,6 +369,7 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
             report_failure(out.error, out.trace)
             rows[key] = {c: np.nan for c in SUMMARY_COLUMNS} | {"image": key, "status": out.error}
             new_pits[key] = []
+    ahead.close()
     ledger.flush()
     kept = old_pits[~old_pits["image"].astype(str).isin(list(new_pits))] if len(old_pits) else old_pits
     fresh = [r for v in new_pits.values() for r in v]
