@@ -1195,12 +1195,15 @@ class Runs:
                          np.bincount(lab, r * r * m, n), np.bincount(lab, scc, n), np.bincount(lab, r * sc, n)])
 
 
-def pixel_runs(idx: np.ndarray, ncols: int) -> Runs:
-    """The horizontal runs of ``idx`` (flat indices, strictly increasing)."""
+def pixel_runs(idx: np.ndarray, ncols: int, labels: np.ndarray | None = None) -> Runs:
+    """The horizontal runs of ``idx`` (flat indices, strictly increasing); with ``labels`` (one per
+    pixel) a run also ends where the label changes."""
     if idx.size == 0:
         z = np.zeros(0, np.intp)
         return Runs(z, z, z.astype(np.int64), z.astype(np.int64))
     brk = np.diff(idx) != 1
+    if labels is not None:
+        brk |= np.diff(labels) != 0
     # a new row starts a new run: the first pixel at or after each row's start (a binary search per
     # row, not a division per pixel)
     first = np.searchsorted(idx, np.arange(1, int(idx[-1]) // ncols + 1, dtype=idx.dtype) * ncols)
@@ -1241,9 +1244,8 @@ def measure_pits(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | N
     """Per-pit geometry (and depth) in mm; pits renumbered 1..n in reading order.
 
     Reading order: bands ``band_mm`` tall from the top, left to right inside a band.
-    ``pixels`` (flat indices and labels of every labelled pixel, optionally rows
-    and columns, as returned by :func:`segment_pits`) saves two full-frame
-    passes; ``labels`` is then renumbered in place.  ``sums`` (their moments per
+    ``pixels`` (flat indices and labels of every labelled pixel, as returned by
+    :func:`segment_pits`) saves two full-frame passes; ``labels`` is then renumbered in place.  ``sums`` (their moments per
     label, :func:`_moment_sums`) saves recounting them.
 
     Returns
@@ -1275,7 +1277,7 @@ def _measure(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | None,
         surface = analysed if analysed is not None else np.ones(labels.shape, bool)
         coef, details = surface_reference(height_mm, surface, exclude=labels)
     if sums is not None:
-        mom = _moments_from_sums(sums) | {"_idx": pixels[0], "_lab": pixels[1], "_rc": pixels[2:4]}
+        mom = _moments_from_sums(sums) | {"_idx": pixels[0], "_lab": pixels[1]}
     else:
         mom = _moments(pixels[0], pixels[1], int(pixels[1].max()) if pixels[1].size else 0, labels.shape[1])
     present = np.flatnonzero(mom["area"] > 0)
@@ -1293,13 +1295,18 @@ def _measure(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | None,
     depth = np.full(len(old), np.nan)
     if height_mm is not None:
         idx, lab = mom["_idx"], lut[mom["_lab"]]
-        rr, cc = mom["_rc"] if len(mom.get("_rc", ())) == 2 else np.divmod(idx, labels.shape[1])
+        # rows and columns from the runs of one pit (no division per pixel); the deepest point per run,
+        # then per pit
+        runs = pixel_runs(idx, labels.shape[1], lab)
+        rr = np.repeat(runs.row.astype(np.float32), runs.length)
+        cc = (np.arange(idx.size) - np.repeat(runs.start - runs.col0, runs.length)).astype(np.float32)
         # float32: heights of a few mm keep sub-nanometre resolution, and half the memory traffic
-        dz = _eval_reference(coef.astype(np.float32), np.float32(details["scale_px"]), rr.astype(np.float32),
-                             cc.astype(np.float32))
+        dz = _eval_reference(coef.astype(np.float32), np.float32(details["scale_px"]), rr, cc)
         dz -= height_mm.ravel()[idx]
         deepest = np.full(len(old) + 1, np.nan, np.float32)  # the dtype of dz: ufunc.at is slow on a mix
-        np.fmax.at(deepest, lab, dz)  # fmax ignores NaN (missing height data)
+        if idx.size:
+            # fmax ignores NaN (missing height data)
+            np.fmax.at(deepest, lab[runs.start], np.fmax.reduceat(dz, runs.start))
         depth = np.maximum(deepest[1:].astype(np.float64), 0.0)  # a pit cannot stand above the surface; NaN stays NaN
     table = pd.DataFrame({
         "pit_id": np.arange(1, len(old) + 1),
