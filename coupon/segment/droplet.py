@@ -257,10 +257,11 @@ def _clean_blob(mask: np.ndarray, scale_px: float) -> np.ndarray:
     m = cv2.morphologyEx(m8[r0:r1, c0:c1], cv2.MORPH_CLOSE, _disk(r_close))
     m = _fill_holes(m)
     m = cv2.morphologyEx(m.view(np.uint8), cv2.MORPH_OPEN, _disk(r_open))
-    n, labels, stats, _ = cv2.connectedComponentsWithStats(m, connectivity=8)
+    # the labels' areas by bincount: OpenCV's statistics pass is single-threaded and slower on the crop
+    n, labels = cv2.connectedComponents(m, connectivity=8, ltype=cv2.CV_32S)
     if n <= 1:
         return out
-    k = 1 + int(np.argmax(stats[1:, cv2.CC_STAT_AREA]))
+    k = 1 + int(np.argmax(np.bincount(labels.ravel(), minlength=n)[1:]))
     out[r0:r1, c0:c1] = labels == k
     return out
 
