@@ -146,3 +146,31 @@ def test_qr_precheck_counts_finder_patterns():
     x1, y1 = np.ceil(c.max(axis=0)).astype(int)
     grey = cv2.cvtColor(np.ascontiguousarray(img[y0:y1, x0:x1]), cv2.COLOR_RGB2GRAY)
     assert qr_finder_count(np.clip(np.rint(grey * 255), 0, 255).astype(np.uint8)) == 0
+
+
+def test_panel_threads_give_the_rows_of_one_thread(tray_file, tmp_path, monkeypatch):
+    # the panels of a photo are rated side by side (panel_threads); the reference is the same photo
+    # rated one panel after the other: the same rows in tray order, the same overlays and JSON
+    from pathlib import Path
+
+    import cv2
+
+    import coupon.cli.panels as cli
+    from coupon.segment.panels import PanelSettings
+
+    path, _ = tray_file
+    out = {}
+    for n in (1, 2):
+        monkeypatch.setattr(cli, "panel_threads", lambda n=n: n)
+        out[n] = cli.rate_image(path, PanelSettings(), None, tmp_path / f"t{n}")
+    assert [r["position"] for r in out[2]] == [r["position"] for r in out[1]] == ["R1C1", "R1C2"]
+    for a, b in zip(out[1], out[2]):
+        for k in PANEL_COLUMNS:
+            if k in ("overlay", "json"):
+                assert str(b[k]).replace("t2", "t1") == str(a[k])
+                continue
+            assert (a[k] == b[k]) or (pd.isna(a[k]) and pd.isna(b[k])), k
+        np.testing.assert_array_equal(cv2.imread(b["overlay"]), cv2.imread(a["overlay"]))
+        ja, jb = (json.loads(Path(r["json"]).read_text()) for r in (a, b))
+        assert {k: v for k, v in jb.items() if k not in ("overlay", "json")} == \
+               {k: v for k, v in ja.items() if k not in ("overlay", "json")}

@@ -139,3 +139,201 @@ def test_eight_bit_tray_gives_the_float_detection_and_rectification():
     codes_a = {k: v[0] for k, v in read_qr_codes(f32, qa).items()}
     codes_b = {k: v[0] for k, v in read_qr_codes(u8, qb).items()}
     assert codes_b == codes_a == {0: "BW-2-C"}
+
+
+# -- the strip-wise and batched paths against the plain whole-panel computations they replaced --
+
+
+def _unmix_whole_panel(lin, valid, px_per_mm):
+    """The rust model computed on whole-panel arrays with plain numpy and OpenCV (no strips, no sparse
+    statistics, one cone search per colour), as :func:`unmix` computed it before the strip-wise pass.
+
+    Returns (score, fraction, neutral_dev, light, rust_wins, noise_fraction).
+    """
+    import cv2
+
+    from coupon.segment.panels import rust as R
+
+    lin = np.ascontiguousarray(lin, np.float32)
+    flat = lin.reshape(-1, 3)
+    idx = np.flatnonzero(valid)
+    px = flat[idx[:: max(1, idx.size // R._SAMPLE_PX)]].astype(np.float64)
+    c = np.median(px, axis=0)
+    for _ in range(2):
+        chroma = px / np.maximum(px.sum(axis=1, keepdims=True), 1e-6)
+        d = np.abs(chroma - c / max(c.sum(), 1e-6)).sum(axis=1)
+        keep = d <= max(np.median(d) * 3, 0.01)
+        if keep.sum() > 50:
+            c = np.median(px[keep], axis=0)
+    c = np.maximum(c, 1e-5)
+    rust = [R._lin(e) for e in R.RUST_ENDMEMBERS_SRGB]
+    cn = float(np.sqrt(c @ c))
+    u1, normals, plane = _model_geometry(c)
+    along, perp2 = R._neutral_residual(lin, u1, normals, plane)
+    a_n = along / np.float32(cn)
+    light = R._smooth_light(a_n, valid, px_per_mm)
+    dev = np.sqrt(perp2) / (np.float32(cn) * light)
+
+    def robust(v):
+        med = float(np.median(v))
+        return med, float(1.4826 * np.median(np.abs(v - med)))
+
+    def best(q, qq, best_res):  # q (n, 3); one colour after the other, the first on a tie
+        bf, bk = np.full(len(q), np.nan, np.float32), np.full(len(q), -1)
+        for k, e in enumerate(rust):
+            d = (e - c).astype(np.float32)
+            qd = q @ d
+            f = np.clip(qd / float(d @ d), 0.0, 1.0)
+            res = qq - 2 * f * qd + f * f * float(d @ d)
+            better = (f > 0) & (res < best_res)
+            best_res, bf, bk = np.where(better, res, best_res), np.where(better, f, bf), np.where(better, k, bk)
+        return bf, bk
+
+    vidx = idx[:: max(1, idx.size // R._SAMPLE_PX)]
+    med, sigma = robust(dev.ravel()[vidx])
+    floor = med + 3 * sigma
+    neutral_dev = 1 - a_n / light
+    fraction, score, wins = neutral_dev.copy(), np.zeros_like(a_n), np.zeros(a_n.shape, bool)
+    cand = np.flatnonzero(dev.ravel() > floor)
+    q = flat[cand] / light.ravel()[cand, None] - c.astype(np.float32)
+    bf, _ = best(q, np.einsum("ij,ij->i", q, q), R.RUST_WINS_RATIO * perp2.ravel()[cand] / light.ravel()[cand] ** 2)
+    won = np.isfinite(bf)
+    wins.ravel()[cand[won]] = True
+    fraction.ravel()[cand[won]] = bf[won]
+    score.ravel()[cand[won]] = (dev.ravel()[cand[won]] - med) / max(sigma, 1e-4)
+    y_c = float(c @ R._LUMA)
+    dy = cv2.transform(lin, R._LUMA.astype(np.float32)[None, :]) / light - np.float32(y_c)
+    y_med, y_sig = robust(dy.ravel()[vidx])
+    k = 2 * int(round(R.CHROMA_POOL_MM / 2 * px_per_mm)) + 1
+    if k >= 3 and y_sig > 0 and y_c > float(np.median([e @ R._LUMA for e in rust])):
+        pb = cv2.boxFilter(lin / light[..., None], -1, (k, k), normalize=True)
+        _, tb2 = R._neutral_residual(pb, u1, normals, plane)
+        dev_b = np.sqrt(tb2) / np.float32(cn)
+        b_med, b_sig = robust(dev_b.ravel()[vidx])
+        cb = np.flatnonzero(((np.abs(dy - y_med) > 2 * y_sig) & (dev_b > b_med + 3 * b_sig) & ~wins).ravel())
+        qv = pb.reshape(-1, 3)[cb] - c.astype(np.float32)
+        bf, bk = best(qv, np.einsum("ij,ij->i", qv, qv), R.RUST_WINS_RATIO * tb2.ravel()[cb])
+        ok = np.isfinite(bf)
+        ids, kk = cb[ok], bk[ok]
+        d_y = np.array([float((e - c) @ R._LUMA) for e in rust], np.float32)[kk]
+        f_l = (dy.ravel()[ids] - y_med) / d_y
+        good = (f_l > 0) & (np.abs(d_y) > 2 * y_sig)
+        ids, f_l = ids[good], f_l[good]
+        wins.ravel()[ids] = True
+        fraction.ravel()[ids] = np.minimum(f_l, 1.0)
+        score.ravel()[ids] = np.minimum(np.abs(dy.ravel()[ids] - y_med) / y_sig,
+                                        (dev_b.ravel()[ids] - b_med) / b_sig)
+    clean = np.flatnonzero(valid & ~wins & (dev <= floor))
+    noise = robust(fraction.ravel()[clean[:: max(1, clean.size // R._SAMPLE_PX)]])[1]
+    return score, fraction, neutral_dev, light, wins, noise
+
+
+@pytest.fixture(scope="module")
+def tray_panels():
+    # one panel of each kind the model treats differently: light coatings (pinpoint, spots: the pooled
+    # lightness test runs), grey (the neutral wedge), dark (no pooled test), green; JPEG 92 and tilt
+    from coupon.segment.panels import base_mask
+    from coupon.segment.panels.detect import find_panels, rectify_panel
+    from coupon.synth.panels import PanelSpec, TraySettings, tray_scene
+
+    specs = [PanelSpec("white", ("pinpoint",)), PanelSpec("grey", ("general",), dirt=True, scribe="x", creep_mm=1.0),
+             PanelSpec("dark", ("spots",), scribe="line", creep_mm=2.0), PanelSpec("green", ("streaks",), glare=True)]
+    img, _ = tray_scene(specs, seed=31, settings=TraySettings(image_wh=(2000, 1600), cols=2))
+    out = []
+    for q in find_panels(img):
+        p = rectify_panel(img, q.corners_xy, (75, 150), 10.0)
+        out.append((p, base_mask(p.linear.shape[:2], 10.0, 5.0)))
+    assert len(out) == 4
+    return out
+
+
+def test_strip_unmix_matches_the_whole_panel_computation(tray_panels):
+    # reference: the same model on whole-panel arrays (plain numpy and OpenCV, _unmix_whole_panel)
+    from coupon.segment.panels.rust import RustSettings, measure_rust, unmix
+
+    for panel, valid in tray_panels:
+        score, fraction, neutral_dev, light, wins, noise = _unmix_whole_panel(panel.linear, valid, 10.0)
+        m = unmix(panel.linear, valid, 10.0)
+        assert m.score.dtype == m.fraction.dtype == m.light.dtype == np.float32
+        # float32 rounding of the same operations in another order: a pixel on a threshold may flip
+        assert (m.rust_wins != wins).sum() <= max(2, 1e-5 * wins.size)
+        same = m.rust_wins == wins
+        np.testing.assert_allclose(m.light, light, rtol=1e-5)
+        np.testing.assert_allclose(m.neutral_dev, neutral_dev, atol=1e-5)
+        np.testing.assert_allclose(m.fraction[same], fraction[same], atol=1e-5)
+        np.testing.assert_allclose(m.score[same], score[same], rtol=1e-4, atol=1e-3)
+        assert m.noise_fraction == pytest.approx(noise, rel=1e-3)
+        ref = ColourModel(m.coating_linear, score, fraction, neutral_dev, light, wins, noise)
+        a, b = measure_rust(m, valid, 10.0, RustSettings()), measure_rust(ref, valid, 10.0, RustSettings())
+        assert a.rust_area_mm2 == pytest.approx(b.rust_area_mm2, rel=1e-3, abs=1e-3)
+        assert abs(a.sites - b.sites) <= 1
+
+
+def test_sample_indices_match_every_kth_set_pixel():
+    from coupon.segment.panels.rust import _sample_idx
+
+    rng = np.random.default_rng(4)
+    for shape, share in [((1500, 750), 0.9), ((1500, 750), 0.001), ((300, 401), 0.3), ((7, 9), 0.5), ((0, 5), 0.5)]:
+        mask = rng.random(shape) < share
+        for n in (20000, 7, 1):
+            ref = np.flatnonzero(mask)
+            np.testing.assert_array_equal(_sample_idx(mask, n), ref[:: max(1, ref.size // n)])
+
+
+def test_coarse_mask_cleaning_matches_scipy_morphology():
+    # scipy.ndimage: opening (3 x 3), closing (3 x 3, twice), hole filling, as find_panels did them
+    from coupon.segment.panels.detect import clean_mask
+
+    rng = np.random.default_rng(6)
+    for t in range(12):
+        m = ndi.uniform_filter(rng.random((300, 400)), 15) > 0.48 + 0.01 * (t % 5)
+        m |= rng.random(m.shape) > 0.97
+        m &= rng.random(m.shape) > 0.03
+        m[:, :3] |= t % 2 == 0  # regions touching the frame
+        s = np.ones((3, 3))
+        ref = ndi.binary_fill_holes(ndi.binary_closing(ndi.binary_opening(m, s), s, iterations=2))
+        np.testing.assert_array_equal(clean_mask(m), ref)
+
+
+def test_projection_peaks_match_one_projection_per_angle():
+    from coupon.segment.panels.scribe import _projection, _projection_peaks
+
+    rng = np.random.default_rng(8)
+    xy = np.concatenate([rng.uniform(0, 75, (300, 2)), np.column_stack([np.linspace(10, 60, 200), np.full(200, 40.0)])])
+    thetas = np.deg2rad(np.arange(0.0, 180.0, 1.0))
+    ref = [_projection(xy, np.ones(len(xy)), th, 0.5)[0].max() for th in thetas]
+    np.testing.assert_array_equal(_projection_peaks(xy, thetas, 0.5), ref)
+
+
+def test_rectified_panel_matches_warp_to_mm_grid():
+    # rectify_panel warps into its own array; the reference is coupon.calibrate.scale.warp_to_mm_grid on
+    # the numpy-decoded crop (the exact 256-level table by fancy indexing)
+    from coupon.calibrate.scale import warp_to_mm_grid
+    from coupon.segment.panels.detect import _DECODE_LUT_U8, rectify_panel
+    from coupon.synth.panels import PanelSpec, TraySettings, tray_scene
+
+    img, _ = tray_scene([PanelSpec("white", ("spots",))], seed=5, settings=TraySettings(image_wh=(900, 1200), cols=1))
+    u8 = np.clip(np.rint(img * 255), 0, 255).astype(np.uint8)
+    corners = np.array([[260.3, 210.7], [640.2, 215.1], [650.8, 990.4], [255.5, 985.9]])
+    got = rectify_panel(u8, corners, (75, 150), 10.0)
+    x0, y0 = int(np.floor(corners[:, 0].min()) - 3), int(np.floor(corners[:, 1].min()) - 3)
+    x1, y1 = int(np.ceil(corners[:, 0].max()) + 4), int(np.ceil(corners[:, 1].max()) + 4)
+    shift = np.array([[1, 0, x0], [0, 1, y0], [0, 0, 1]], dtype=np.float64)
+    ref = warp_to_mm_grid(_DECODE_LUT_U8[u8[y0:y1, x0:x1]], got.scale.homography @ shift, got.size_mm, 10.0)
+    np.testing.assert_array_equal(got.linear, ref)
+
+
+def test_row_medians_match_numpy_median():
+    # numpy's median (the one partition per row of _median_rows against np.median's three), ties and NaN
+    from coupon.segment.panels.rust import _median_rows
+
+    rng = np.random.default_rng(9)
+    for n in (1, 2, 3, 50, 20000, 20001):
+        for dtype in (np.float64, np.float32):
+            a = rng.random((3, n)).astype(dtype)
+            a[1] = np.round(a[1], 2)  # many ties
+            got = _median_rows(a)
+            assert got.dtype == np.median(a, axis=1).dtype
+            np.testing.assert_array_equal(got, np.median(a, axis=1))
+            a[2, n // 2] = np.nan
+            np.testing.assert_array_equal(_median_rows(a), np.median(a, axis=1))

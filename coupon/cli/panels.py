@@ -131,10 +131,32 @@ def _empty_row(image: str, status: str) -> dict:
     return {c: np.nan for c in PANEL_COLUMNS} | {"image": image, "status": status, "scribe_found": False}
 
 
+#: At most this many panels of one photo are rated at once: each holds about 100 MB of maps at
+#: 10 px/mm (VmHWM of the 12 MP benchmark 391 MB with two threads, 400 MB one panel at a time before).
+PANEL_THREADS_MAX = 4
+
+
+def panel_threads() -> int:
+    """Threads that rate the panels of one photo side by side: as many as OpenCV may use (its core
+    count), at most :data:`PANEL_THREADS_MAX`.
+
+    Batch workers set OpenCV to one thread each (``coupon.io.batch``), so they rate their panels one
+    after the other and ``--workers N`` keeps N cores busy, not 2 N.  In one process the panels share
+    the cores: most of a panel's work (OpenCV, numpy on strips, PNG encoding) releases the GIL; on the
+    2-core benchmark machine two threads take 0.8 of the time of one (the rest holds the GIL: small
+    numpy calls, the JSON encoder).
+    """
+    import cv2
+
+    return max(1, min(PANEL_THREADS_MAX, cv2.getNumThreads()))
+
+
 def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out_dir: Path,
                layout: dict | None = None, exposure_h: float | None = None,
                max_pixels: int = DEFAULT_MAX_PIXELS) -> list[dict]:
     """Rate every panel in one tray photo; write its overlays and JSON files; return the CSV rows.
+
+    The panels are rated on :func:`panel_threads` threads; the rows come back in tray order.
 
     Raises
     ------
@@ -152,74 +174,87 @@ def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out
     px_scale = profile.scale.px_per_mm if (profile is not None and profile.scale is not None) else None
     inside = [q for q in quads if q.touches is None]
     median_area = float(np.median([q.area_px2 for q in inside])) if len(inside) >= 3 else None
-    rows = []
-    for i, q in enumerate(quads):
-        r, c = q.position
-        ident = {"panel_id": f"R{r}C{c}", "id_source": "position", "system": "", "replicate": ""}
-        if layout and (r, c) in layout:
-            ident.update(layout[(r, c)], id_source="layout")
-        if i in qr:
-            ident.update(panel_id=qr[i][0], id_source="qr")
-        centre = q.centre_xy
-        row = _empty_row(str(path), "ok") | ident | {
-            "position": f"R{r}C{c}", "row": r, "col": c,
-            "exposure_h": np.nan if exposure_h is None else float(exposure_h),
-            "x_px": float(centre[0]), "y_px": float(centre[1]),
-        }
-        if q.touches is not None:
-            row["status"] = (f"panel partly outside the frame (touches the {q.touches} edge); "
-                             "reframe so that every panel is wholly in the photo")
-            rows.append(row)
-            continue
-        problem = check_panel_size(q, settings.size_mm, px_scale, median_area, settings.size_tolerance)
-        if problem:
-            row["status"] = problem
-            rows.append(row)
-            continue
-        panel = rectify_panel(pixels, q.corners_xy, settings.size_mm, settings.px_per_mm)
-        boxes = []
-        if i in qr:
-            # the QR label is not coating: leave its box (plus 2 mm) out of the rating
-            import cv2
 
-            mm = cv2.perspectiveTransform(qr[i][1].reshape(-1, 1, 2), panel.scale.homography).reshape(-1, 2)
-            lo, hi = mm.min(axis=0) - 2, mm.max(axis=0) + 2
-            if np.all(hi > 0) and np.all(lo < panel.size_mm):
-                boxes.append((lo[0], lo[1], hi[0], hi[1]))
-        res = rate_panel(panel, settings, profile.colour if profile is not None else None, boxes)
-        stem = f"{path.stem}_{_safe(row['panel_id'])}"
-        overlay = out_dir / "overlays" / f"{stem}.png"
-        title = (f"{row['panel_id']} {row['position']}  rust {res['rust_area_pct']:.2f} %  "
-                 f"D610 {res['rust_grade_written']}  {res['ri_degree']}")
-        if res["scribe_found"]:
-            title += f"  creep {res['creep_mean_mm']:.2f} mm"
-        write_panel_overlay(overlay, panel.linear, panel.px_per_mm, res["_rated"], res["_rust"].site_mask,
-                            res["_scribe"], title)
-        status = "ok"
-        if settings.scribe.mode in ("line", "x") and not res["scribe_found"]:
-            status = f"scribe not found ({res['scribe_note']}); rust rated without a scribe zone"
-        for k in PANEL_COLUMNS:
-            if k in res:
-                row[k] = res[k]
-        row.update(overlay=str(overlay), status=status)
-        jpath = out_dir / "panels" / f"{stem}.json"
-        row["json"] = str(jpath)
-        scribe = res["_scribe"]
-        write_json(jpath, {
-            **{k: row[k] for k in PANEL_COLUMNS},
-            "corners_xy": q.corners_xy.tolist(), "panel_size_mm": list(panel.size_mm),
-            "coating_srgb": res["coating_srgb"], "rust_pixel_count_pct": res["rust_pixel_count_pct"],
-            "scribe_lines_mm": scribe.lines, "creep_stations": scribe.stations, "scribe_note": scribe.note,
-            "rust_site_area_mm2": res["_rust"].site_area_mm2.tolist(),
-            "settings": settings.to_dict(), "image_sha256": img.sha256,
-            "profile": None if profile is None else str(profile.path),
-            "profile_sha256": None if profile is None else profile.sha256,
-            "coupon_version": __version__,
-            "scales": {"rust_grade": "ASTM D610-08 Table 1", "ri_degree": "ISO 4628-3 (coupon cut-offs)",
-                       "creep_rating": "ASTM D1654 (body of table from memory)"},
-        })
-        rows.append(row)
-    return rows
+    def one(i: int) -> dict:
+        return _rate_quad(path, img.sha256, pixels, quads[i], qr.get(i), settings, profile, out_dir, layout,
+                          exposure_h, px_scale, median_area)
+
+    threads = min(panel_threads(), len(quads))
+    if threads <= 1:
+        return [one(i) for i in range(len(quads))]
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=threads, thread_name_prefix="coupon-panels") as pool:
+        return list(pool.map(one, range(len(quads))))
+
+
+def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings: PanelSettings,
+               profile: Profile | None, out_dir: Path, layout: dict | None, exposure_h: float | None,
+               px_scale: float | None, median_area: float | None) -> dict:
+    """The CSV row of one found panel (rectify, rate, overlay, JSON); ``qr_hit`` is (text, corners) or None."""
+    r, c = q.position
+    ident = {"panel_id": f"R{r}C{c}", "id_source": "position", "system": "", "replicate": ""}
+    if layout and (r, c) in layout:
+        ident.update(layout[(r, c)], id_source="layout")
+    if qr_hit is not None:
+        ident.update(panel_id=qr_hit[0], id_source="qr")
+    centre = q.centre_xy
+    row = _empty_row(str(path), "ok") | ident | {
+        "position": f"R{r}C{c}", "row": r, "col": c,
+        "exposure_h": np.nan if exposure_h is None else float(exposure_h),
+        "x_px": float(centre[0]), "y_px": float(centre[1]),
+    }
+    if q.touches is not None:
+        row["status"] = (f"panel partly outside the frame (touches the {q.touches} edge); "
+                         "reframe so that every panel is wholly in the photo")
+        return row
+    problem = check_panel_size(q, settings.size_mm, px_scale, median_area, settings.size_tolerance)
+    if problem:
+        row["status"] = problem
+        return row
+    panel = rectify_panel(pixels, q.corners_xy, settings.size_mm, settings.px_per_mm)
+    boxes = []
+    if qr_hit is not None:
+        # the QR label is not coating: leave its box (plus 2 mm) out of the rating
+        import cv2
+
+        mm = cv2.perspectiveTransform(qr_hit[1].reshape(-1, 1, 2), panel.scale.homography).reshape(-1, 2)
+        lo, hi = mm.min(axis=0) - 2, mm.max(axis=0) + 2
+        if np.all(hi > 0) and np.all(lo < panel.size_mm):
+            boxes.append((lo[0], lo[1], hi[0], hi[1]))
+    res = rate_panel(panel, settings, profile.colour if profile is not None else None, boxes)
+    stem = f"{path.stem}_{_safe(row['panel_id'])}"
+    overlay = out_dir / "overlays" / f"{stem}.png"
+    title = (f"{row['panel_id']} {row['position']}  rust {res['rust_area_pct']:.2f} %  "
+             f"D610 {res['rust_grade_written']}  {res['ri_degree']}")
+    if res["scribe_found"]:
+        title += f"  creep {res['creep_mean_mm']:.2f} mm"
+    write_panel_overlay(overlay, panel.linear, panel.px_per_mm, res["_rated"], res["_rust"].site_mask,
+                        res["_scribe"], title)
+    status = "ok"
+    if settings.scribe.mode in ("line", "x") and not res["scribe_found"]:
+        status = f"scribe not found ({res['scribe_note']}); rust rated without a scribe zone"
+    for k in PANEL_COLUMNS:
+        if k in res:
+            row[k] = res[k]
+    row.update(overlay=str(overlay), status=status)
+    jpath = out_dir / "panels" / f"{stem}.json"
+    row["json"] = str(jpath)
+    scribe = res["_scribe"]
+    write_json(jpath, {
+        **{k: row[k] for k in PANEL_COLUMNS},
+        "corners_xy": q.corners_xy.tolist(), "panel_size_mm": list(panel.size_mm),
+        "coating_srgb": res["coating_srgb"], "rust_pixel_count_pct": res["rust_pixel_count_pct"],
+        "scribe_lines_mm": scribe.lines, "creep_stations": scribe.stations, "scribe_note": scribe.note,
+        "rust_site_area_mm2": res["_rust"].site_area_mm2.tolist(),
+        "settings": settings.to_dict(), "image_sha256": sha256,
+        "profile": None if profile is None else str(profile.path),
+        "profile_sha256": None if profile is None else profile.sha256,
+        "coupon_version": __version__,
+        "scales": {"rust_grade": "ASTM D610-08 Table 1", "ri_degree": "ISO 4628-3 (coupon cut-offs)",
+                   "creep_rating": "ASTM D1654 (body of table from memory)"},
+    })
+    return row
 
 
 @dataclass(frozen=True)

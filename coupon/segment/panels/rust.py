@@ -130,9 +130,23 @@ _LUMA = np.array([0.299, 0.587, 0.114])
 CHROMA_POOL_MM = 0.6
 
 
+#: Elements per chunk of :func:`_sample_idx` (the chunk's index array, 0.5 MB, stays in cache).
+_SAMPLE_CHUNK = 1 << 16
+
+
 def _sample_idx(mask: np.ndarray, n: int = _SAMPLE_PX) -> np.ndarray:
-    idx = np.flatnonzero(mask)
-    return idx[:: max(1, idx.size // n)]
+    """Every k-th set pixel of ``mask`` (flat indices), k = count // n: ``flatnonzero(mask)[::k]``.
+
+    Chunk by chunk, so the full index list (8 MB of int64 for a 1.1 MP panel, 3 ms) is never made.
+    """
+    flat = mask.ravel()
+    step = max(1, int(np.count_nonzero(flat)) // n)
+    out, seen = [], 0
+    for a in range(0, flat.size, _SAMPLE_CHUNK):
+        idx = np.flatnonzero(flat[a:a + _SAMPLE_CHUNK])
+        out.append(idx[(-seen) % step::step] + a)  # global ranks seen, seen + 1, ...: keep multiples of step
+        seen += idx.size
+    return np.concatenate(out) if out else np.zeros(0, np.int64)
 
 
 def _robust(values: np.ndarray) -> tuple[float, float]:
@@ -143,19 +157,41 @@ def _robust(values: np.ndarray) -> tuple[float, float]:
     return med, float(1.4826 * np.median(np.abs(values - med)))
 
 
-def coating_colour(lin: np.ndarray, valid: np.ndarray) -> np.ndarray:
-    """Robust coating colour: median of the valid pixels, then of those near it in chromaticity."""
+def _median_rows(a: np.ndarray) -> np.ndarray:
+    """``np.median(a, axis=1)`` of a 2-D float array, the same values (NaN for a row holding NaN).
+
+    One partition at the middle (and, for an even count, the largest value below it): np.median
+    partitions at three places and takes 0.5 ms for 3 x 20 000 values, this 0.2 ms.
+    """
+    n = a.shape[1]
+    if n == 0:
+        return np.median(a, axis=1)
+    m = n // 2
+    part = np.partition(a, m, axis=1)
+    med = part[:, m] if n % 2 else (part[:, :m].max(axis=1) + part[:, m]) / 2
+    return np.where(np.isnan(a.max(axis=1)), np.nan, med)  # max is NaN exactly when a row holds NaN
+
+
+def coating_colour(lin: np.ndarray, valid: np.ndarray, idx: np.ndarray | None = None) -> np.ndarray:
+    """Robust coating colour: median of the valid pixels, then of those near it in chromaticity.
+
+    ``idx``: the sampled valid pixels (``_sample_idx(valid)``) when the caller has them already.
+    """
     flat = lin.reshape(-1, 3)
-    idx = _sample_idx(valid)
+    idx = _sample_idx(valid) if idx is None else idx
     px = flat[idx].astype(np.float64) if idx.size >= 50 else flat[:: max(1, flat.shape[0] // _SAMPLE_PX)].astype(np.float64)
-    c = np.median(px, axis=0)
+    # planar (3, n): the same sums in channel order, on contiguous rows (an axis-1 sum over (n, 3) costs
+    # 12 ns a pixel, 0.24 ms on 20 000 samples)
+    px = _planar(px)
+    c = _median_rows(px)
     for _ in range(2):
-        chroma = px / np.maximum(px.sum(axis=1, keepdims=True), 1e-6)
+        chroma = px / np.maximum(px[0] + px[1] + px[2], 1e-6)
         c_chroma = c / max(c.sum(), 1e-6)
-        d = np.abs(chroma - c_chroma).sum(axis=1)
+        dev = np.abs(chroma - c_chroma[:, None])
+        d = dev[0] + dev[1] + dev[2]
         keep = d <= max(np.median(d) * 3, 0.01)
         if keep.sum() > 50:
-            c = np.median(px[keep], axis=0)
+            c = _median_rows(px[:, keep])
     return np.maximum(c, 1e-5)
 
 
@@ -180,8 +216,8 @@ def _smooth_light(alpha: np.ndarray, clean: np.ndarray, px_per_mm: float) -> np.
     f = min(1.0, 0.5 / px_per_mm)
     size = (max(4, int(round(cols * f))), max(4, int(round(rows * f))))
     cleanf = clean.astype(np.float32)
-    a_small = cv2.resize(alpha * cleanf, size, interpolation=cv2.INTER_AREA)
     w_small = cv2.resize(cleanf, size, interpolation=cv2.INTER_AREA)
+    a_small = cv2.resize(np.multiply(alpha, cleanf, out=cleanf), size, interpolation=cv2.INTER_AREA)
     ok = w_small > 0.9
     vals = (a_small[ok] / w_small[ok]).astype(np.float64)
     rr, cc = np.nonzero(ok)
@@ -205,19 +241,29 @@ def _smooth_light(alpha: np.ndarray, clean: np.ndarray, px_per_mm: float) -> np.
     xv = ((np.arange(cols, dtype=np.float64) + 0.5) * f / cs_ - 0.5)[None, :]
     row_part = (coef[0] + coef[2] * yv + coef[5] * yv * yv).astype(np.float32)
     slope = (coef[1] + coef[4] * yv).astype(np.float32)
-    light = row_part + slope * xv.astype(np.float32) + np.float32(coef[3]) * (xv * xv).astype(np.float32)
-    return np.maximum(light, 1e-3).astype(np.float32)
+    # in place in one numpy-allocated map (the same float32 operations as the plain expression
+    # row_part + slope * x + c3 * x2, without its three full-size temporaries)
+    light = np.multiply(slope, xv.astype(np.float32))
+    np.add(row_part, light, out=light)
+    np.add(light, np.float32(coef[3]) * (xv * xv).astype(np.float32), out=light)
+    return np.maximum(light, np.float32(1e-3), out=light)
 
 
 def _best_rust(q: np.ndarray, qq: np.ndarray, best_res: np.ndarray, rust_dev: list[np.ndarray]):
-    """Best rust colour per row of ``q`` (deviations from the coating): fraction, index, residual^2."""
-    best_f = np.full(q.shape[0], np.nan, np.float32)
-    best_k = np.full(q.shape[0], -1, np.int8)
-    # all projections in one (n, 3) x (3, k) product instead of one matrix-vector product per colour
-    qds = q @ np.stack(rust_dev, axis=1).astype(q.dtype, copy=False)
+    """Best rust colour per pixel: fraction, index, residual^2.
+
+    ``q`` is planar, (3, n): the deviations from the coating, one row per channel; ``qq`` their squared
+    norms.  A colour counts only with a positive fraction and a residual below ``best_res`` (the first
+    colour wins a tie); else the fraction is NaN and the index -1.  Planar rows keep every operation on
+    contiguous 1-D arrays: numpy on an (n, 3) or (n, 5) array (a reduction or broadcast over the short
+    inner axis) runs 4 to 10 times slower per element, and a BLAS product costs its threads' start-up
+    (up to 8 ms a call on this 2-core machine when the other core is busy).
+    """
+    best_f = np.full(q.shape[1], np.nan, np.float32)
+    best_k = np.full(q.shape[1], -1, np.int8)
     for k, d in enumerate(rust_dev):
         dd = float(d @ d)
-        qd = qds[:, k]
+        qd = q[0] * d[0] + q[1] * d[1] + q[2] * d[2]
         f = np.clip(qd / dd, 0.0, 1.0)
         res = qq - 2 * f * qd + f * f * dd
         better = (f > 0) & (res < best_res)
@@ -227,9 +273,26 @@ def _best_rust(q: np.ndarray, qq: np.ndarray, best_res: np.ndarray, rust_dev: li
     return best_f, best_k, best_res
 
 
+def _planar(px: np.ndarray) -> np.ndarray:
+    """(n, 3) pixels as a contiguous (3, n) array, one row per channel."""
+    return np.ascontiguousarray(px.T)
+
+
+def _norm2(q: np.ndarray) -> np.ndarray:
+    """Squared norm of each column of a planar (3, n) array (summed in channel order, as einsum does)."""
+    return q[0] * q[0] + q[1] * q[1] + q[2] * q[2]
+
+
 def _channels(a: np.ndarray) -> np.ndarray:
     # cv2.transform drops the channel axis when it gives one channel
     return a[..., None] if a.ndim == 2 else a
+
+
+def _sparse_residual(px: np.ndarray, u1: np.ndarray, normals: np.ndarray, plane: list) -> np.ndarray:
+    """Squared distance from the neutral wedge (or line) of (n, 3) pixels, (n,) float32 (n may be 0)."""
+    if len(px) == 0:
+        return np.zeros(0, np.float32)
+    return _neutral_residual(px.reshape(-1, 1, 3), u1, normals, plane)[1].ravel()
 
 
 def _neutral_residual(img: np.ndarray, u1: np.ndarray, normals: np.ndarray, plane: list) -> tuple[np.ndarray, np.ndarray]:
@@ -262,13 +325,14 @@ def _neutral_residual(img: np.ndarray, u1: np.ndarray, normals: np.ndarray, plan
 
 #: Rows per strip of :func:`unmix`'s full-resolution pass.  A strip's float arrays (64 x 750 x 3
 #: float32 = 0.6 MB on a 75 mm panel at 10 px/mm) stay in a core's 1 MB L2 cache; the same steps on
-#: whole-panel temporaries (13.5 MB each, fresh pages every time) cost 2.5 to 3 times as long.
+#: whole-panel temporaries (13.5 MB each, fresh pages every time) took twice as long (six benchmark
+#: panels: 0.29 s against 0.62 s with one strip the height of the panel; 128 rows: as fast as 64).
 STRIP_ROWS = 64
 
 
-def _strips(rows: int, step: int = STRIP_ROWS):
-    for r0 in range(0, rows, step):
-        yield r0, min(rows, r0 + step)
+def _strips(rows: int):
+    for r0 in range(0, rows, STRIP_ROWS):
+        yield r0, min(rows, r0 + STRIP_ROWS)
 
 
 def unmix(lin: np.ndarray, valid: np.ndarray, px_per_mm: float,
@@ -307,7 +371,8 @@ def unmix(lin: np.ndarray, valid: np.ndarray, px_per_mm: float,
     lin = np.ascontiguousarray(lin, dtype=np.float32)
     shape = lin.shape[:2]
     rows, cols = shape
-    c = coating_colour(lin, valid) if coating_linear is None else np.asarray(coating_linear, np.float64)
+    vidx = _sample_idx(valid)
+    c = coating_colour(lin, valid, vidx) if coating_linear is None else np.asarray(coating_linear, np.float64)
     rust = [_lin(e) for e in endmembers_srgb]
     grey = np.ones(3) / np.sqrt(3)
     cn = float(np.sqrt(c @ c))
@@ -318,25 +383,23 @@ def unmix(lin: np.ndarray, valid: np.ndarray, px_per_mm: float,
     # normals of the neutral plane (one), or of the neutral line when the coating is grey (two)
     _, _, vt = np.linalg.svd(np.array(plane))
     normals = vt[len(plane):]
-    # pass 1: brightness along the coating colour (the light field is fitted to it)
+    # brightness relative to the coating (the light field is fitted to it): one 1-row transform into a
+    # numpy-allocated map
     a_n = np.empty(shape, np.float32)
-    for r0, r1 in _strips(rows):
-        along, _ = _neutral_residual(lin[r0:r1], u1, normals, plane)
-        np.divide(along, cn32, out=a_n[r0:r1])  # brightness relative to the coating
+    cv2.transform(lin, (u1 / cn).astype(np.float32)[None, :], dst=a_n)
     light = _smooth_light(a_n, valid, px_per_mm)
     lflat = light.ravel()
     flat = lin.reshape(-1, 3)
     # global statistics from the sampled valid pixels only (the same per-pixel arithmetic)
-    vidx = _sample_idx(valid)
     px_v = flat[vidx].reshape(-1, 1, 3)
-    _, perp2_v = _neutral_residual(px_v, u1, normals, plane)
-    dev_v = np.sqrt(perp2_v.ravel()) / (cn32 * lflat[vidx])
+    dev_v = np.sqrt(_sparse_residual(px_v, u1, normals, plane)) / (cn32 * lflat[vidx])
     med, sigma = _robust(dev_v)
     noise_floor = np.float32(med + 3 * sigma)
     s_inv = max(sigma, 1e-4)
     luma = _LUMA.astype(np.float32)[None, :]
     y_c = float(c @ _LUMA)
-    dy_v = _channels(cv2.transform(px_v, luma))[..., 0].ravel() / lflat[vidx] - np.float32(y_c)
+    dy_v = (_channels(cv2.transform(px_v, luma))[..., 0].ravel() if vidx.size else np.zeros(0, np.float32))
+    dy_v = dy_v / lflat[vidx] - np.float32(y_c)
     y_med, y_sig = _robust(dy_v)
     k = 2 * int(round(CHROMA_POOL_MM / 2 * px_per_mm)) + 1
     rust_y = np.array([float(e @ _LUMA) for e in rust])
@@ -350,12 +413,15 @@ def unmix(lin: np.ndarray, valid: np.ndarray, px_per_mm: float,
     score = np.zeros(shape, np.float32)
     rust_wins = np.zeros(shape, bool)
     quiet = np.empty(shape, bool)  # distance from the neutral cone within the noise
-    dev_b = np.empty(shape, np.float32) if pooled else None
     c32 = c.astype(np.float32)
     rust_dev = [(e - c).astype(np.float32) for e in rust]
     y_thr = np.float32(2 * y_sig)
-    # pooled-chroma candidates (lightness strong, no rust from the per-pixel test), kept sparse
-    b_idx, b_pb, b_tb2 = [], [], []
+    # the strips collect sparse candidates; the cone searches then run once per panel on contiguous
+    # (planar) arrays: per strip they were some 50 small numpy calls each, whose call overhead
+    # outweighed the arithmetic on a few thousand pixels
+    c_idx, c_px, c_l, c_p2, c_dev = [], [], [], [], []  # per-pixel test: leaves the neutral cone
+    b_idx, b_pb, b_dy = [], [], []  # pooled test: strong lightness deviation
+    pb_v = np.empty((vidx.size, 3), np.float32)  # pooled colour at the sampled pixels (its noise)
     for r0, r1 in _strips(rows):
         s = lin[r0:r1]
         ls = light[r0:r1]
@@ -371,54 +437,62 @@ def unmix(lin: np.ndarray, valid: np.ndarray, px_per_mm: float,
         base = r0 * cols
         cand = np.flatnonzero(~quiet[r0:r1])
         if cand.size:
-            # with the light level known, unmix linearly: p / L = c + f (e - c) for each rust colour e;
-            # a rust colour must explain the pixel clearly better than the neutral cone (dirt, glare)
-            lc = ls.ravel()[cand]
-            q = s.reshape(-1, 3)[cand] / lc[:, None] - c32
-            qq = np.einsum("ij,ij->i", q, q)
-            best_f, _, _ = _best_rust(q, qq, RUST_WINS_RATIO * perp2.ravel()[cand] / lc ** 2, rust_dev)
-            won = np.isfinite(best_f)
-            idx = cand[won]
-            rust_wins[r0:r1].ravel()[idx] = True
-            fraction[r0:r1].ravel()[idx] = best_f[won]
-            # score: distance from the neutral cone in noise units (how sure this is rust)
-            score[r0:r1].ravel()[idx] = (dev.ravel()[idx] - med) / s_inv
+            c_idx.append(cand + base)
+            c_px.append(s.reshape(-1, 3)[cand])
+            c_l.append(ls.ravel()[cand])
+            c_p2.append(perp2.ravel()[cand])
+            c_dev.append(dev.ravel()[cand])
         if not pooled:
             continue
         # -- lightness at full resolution, rust identity from pooled chroma (JPEG-proof specks) --
         h0, h1 = max(0, r0 - half), min(rows, r1 + half)
-        pb = cv2.boxFilter(lin[h0:h1] / light[h0:h1, :, None], -1, (k, k), normalize=True)[r0 - h0:r1 - h0]
-        _, tb2 = _neutral_residual(pb, u1, normals, plane)
-        np.divide(np.sqrt(tb2), cn32, out=dev_b[r0:r1])
+        # p / L by OpenCV on a three-channel copy of L (numpy's broadcast over the inner axis of 3 took
+        # twice as long)
+        ratio = cv2.divide(lin[h0:h1], cv2.merge([light[h0:h1]] * 3))
+        pb = cv2.boxFilter(ratio, -1, (k, k), normalize=True)[r0 - h0:r1 - h0].reshape(-1, 3)
         dy = _channels(cv2.transform(s, luma))[..., 0] / ls - np.float32(y_c)  # lightness deviation
-        strong = cv2.absdiff(dy, float(y_med)) > y_thr
-        strong &= ~rust_wins[r0:r1]
-        sb = np.flatnonzero(strong)
+        sb = np.flatnonzero(cv2.absdiff(dy, float(y_med)) > y_thr)
+        v0, v1 = np.searchsorted(vidx, [base, base + s.shape[0] * cols])
+        pb_v[v0:v1] = pb[vidx[v0:v1] - base]
         if sb.size:
             b_idx.append(sb + base)
-            b_pb.append(pb.reshape(-1, 3)[sb])
-            b_tb2.append(np.stack([tb2.ravel()[sb], dy.ravel()[sb]], axis=1))
+            b_pb.append(pb[sb])
+            b_dy.append(dy.ravel()[sb])
+    if c_idx:
+        # with the light level known, unmix linearly: p / L = c + f (e - c) for each rust colour e;
+        # a rust colour must explain the pixel clearly better than the neutral cone (dirt, glare)
+        cand, lc = np.concatenate(c_idx), np.concatenate(c_l)
+        q = _planar(np.concatenate(c_px)) / lc - c32[:, None]
+        best_f, _, _ = _best_rust(q, _norm2(q), RUST_WINS_RATIO * np.concatenate(c_p2) / lc ** 2, rust_dev)
+        won = np.isfinite(best_f)
+        idx = cand[won]
+        rust_wins.ravel()[idx] = True
+        fraction.ravel()[idx] = best_f[won]
+        # score: distance from the neutral cone in noise units (how sure this is rust)
+        score.ravel()[idx] = (np.concatenate(c_dev)[won] - med) / s_inv
     if pooled and b_idx:
-        b_med, b_sig = _robust(dev_b.ravel()[vidx])
+        # the pooled colour's distance from the neutral cone, only at the candidates and sampled pixels
+        b_med, b_sig = _robust(np.sqrt(_sparse_residual(pb_v, u1, normals, plane)) / cn32)
         cand_b = np.concatenate(b_idx)
-        pbv = np.concatenate(b_pb)
-        tb2_dy = np.concatenate(b_tb2)
-        lean = dev_b.ravel()[cand_b] > b_med + 3 * b_sig
-        cand_b, pbv, tb2_dy = cand_b[lean], pbv[lean], tb2_dy[lean]
+        free = ~rust_wins.ravel()[cand_b]  # not already rust by the per-pixel test
+        cand_b, pbv, dyv = cand_b[free], np.concatenate(b_pb)[free], np.concatenate(b_dy)[free]
+        tb2 = _sparse_residual(pbv, u1, normals, plane)
+        dev_b = np.sqrt(tb2) / cn32
+        lean = dev_b > b_med + 3 * b_sig
+        cand_b, pbv, tb2, dyv, dev_b = cand_b[lean], pbv[lean], tb2[lean], dyv[lean], dev_b[lean]
         if cand_b.size and b_sig > 0:
-            qv = pbv - c32  # deviation from the coating, only where it is needed
-            qq = np.einsum("ij,ij->i", qv, qv)
-            bf, bk, _ = _best_rust(qv, qq, RUST_WINS_RATIO * tb2_dy[:, 0], rust_dev)
+            qv = _planar(pbv) - c32[:, None]  # deviation from the coating, only where it is needed
+            bf, bk, _ = _best_rust(qv, _norm2(qv), RUST_WINS_RATIO * tb2, rust_dev)
             ok = np.isfinite(bf)
-            ids, kk, dy_ok = cand_b[ok], bk[ok].astype(int), tb2_dy[ok, 1]
+            ids, kk, dy_ok, dev_ok = cand_b[ok], bk[ok].astype(int), dyv[ok], dev_b[ok]
             d_y = np.array([float(d @ _LUMA) for d in rust_dev], np.float32)[kk]
             f_l = (dy_ok - y_med) / d_y  # lightness unmixed against the chosen rust colour
             good = (f_l > 0) & (np.abs(d_y) > 2 * y_sig)
-            ids, f_l, d_y, dy_ok = ids[good], f_l[good], d_y[good], dy_ok[good]
+            ids, f_l, d_y, dy_ok, dev_ok = ids[good], f_l[good], d_y[good], dy_ok[good], dev_ok[good]
             rust_wins.ravel()[ids] = True
             fraction.ravel()[ids] = np.minimum(f_l, 1.0)
             s_l = np.abs(dy_ok - y_med) / y_sig
-            s_b = (dev_b.ravel()[ids] - b_med) / b_sig
+            s_b = (dev_ok - b_med) / b_sig
             score.ravel()[ids] = np.minimum(s_l, s_b)
     clean = quiet
     clean &= valid
@@ -520,7 +594,7 @@ def _sites(model: ColourModel, rated: np.ndarray, px_per_mm: float, low: float, 
     lab_img = np.zeros(rated.shape, np.uint16 if n < 65535 else np.float32)
     lab_img.ravel()[sidx] = s_lab
     halo = cv2.dilate(lab_img, np.ones((3, 3), np.uint8))
-    hidx = np.flatnonzero(halo)
+    hidx = np.flatnonzero(halo.ravel() != 0)  # on a bool map: 1.4 ms instead of 2.2 ms on the uint16 labels
     inner = lab_img.ravel()[hidx].astype(np.int32)
     hl = np.where(inner > 0, inner, halo.ravel()[hidx].astype(np.int32))
     inside = (inner > 0) | rated_f[hidx]
