@@ -221,3 +221,20 @@ def test_run_sums_equal_pixel_sums():
     run_lab = lab.ravel()[idx[runs.start]]
     assert np.array_equal(np.repeat(run_lab, runs.length), lab.ravel()[idx])
     assert np.array_equal(runs.sums(run_lab, n + 1), _moment_sums(idx, lab.ravel()[idx], n + 1, lab.shape[1]))
+
+
+@pytest.mark.parametrize("shape", [(400, 600), (401, 599), (37, 1000), (5, 7)])
+def test_pit_labels_block_centres_equal_slicing_the_map(shape):
+    """The overlay's label sample from the pixel list equals slicing the full map (numpy)."""
+    from coupon.segment.pits import PitLabels
+
+    rng = np.random.default_rng(shape[0])
+    full = ((rng.random(shape) < 0.3) * rng.integers(1, 50, shape)).astype(np.int32)
+    idx = np.flatnonzero(full)
+    labels = PitLabels(shape, idx, full.ravel()[idx])
+    assert np.array_equal(np.asarray(labels), full)
+    for k in (1, 2, 3, 4, 7):
+        hb, wb = shape[0] // k, shape[1] // k
+        assert np.array_equal(labels.block_centres(k), full[k // 2::k, k // 2::k][:hb, :wb])
+    empty = PitLabels(shape, np.zeros(0, np.int64), np.zeros(0, np.int32))
+    assert not empty.block_centres(3).any()

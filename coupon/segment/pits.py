@@ -168,11 +168,21 @@ class PitLabels:
 
     def block_centres(self, k: int) -> np.ndarray:
         """``full()[k//2::k, k//2::k]`` cut to whole k x k blocks, from the pixel list."""
-        hb, wb = self.shape[0] // k, self.shape[1] // k
+        h, w = self.shape
+        hb, wb = h // k, w // k
         out = np.zeros((hb, wb), np.int32)
-        r, c = np.divmod(self.idx, self.shape[1])
-        on = (r % k == k // 2) & (c % k == k // 2) & (r < hb * k) & (c < wb * k)
-        out[r[on] // k, c[on] // k] = self.ids[on]
+        # the pixels of the sampled rows are contiguous segments of the sorted list: found by binary
+        # search, so only about 1 pixel in k is looked at (a division of every pixel took 12 ms at 24 MP)
+        first = (np.arange(hb, dtype=np.int64) * k + k // 2) * w
+        lo = np.searchsorted(self.idx, first)
+        n = np.searchsorted(self.idx, first + wb * k) - lo
+        if n.sum() == 0:
+            return out
+        pos = np.arange(int(n.sum())) + np.repeat(lo - np.concatenate([[0], np.cumsum(n)[:-1]]), n)
+        row = np.repeat(np.arange(hb), n)
+        col = self.idx[pos] - np.repeat(first, n)
+        on = col % k == k // 2
+        out.ravel()[row[on] * wb + col[on] // k] = self.ids[pos[on]]
         return out
 
 
