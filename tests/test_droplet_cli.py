@@ -237,3 +237,19 @@ def test_prefetch_loads_ahead_in_order_and_keeps_errors_with_their_item():
     assert got == ["A", "B", "error bad: corrupt", "C"]
     assert sorted(i for i, _ in seen) == sorted(items)  # each loaded once
     assert [t.startswith("coupon-prefetch") for i, t in seen if i != "a"] == [True] * 3  # all but the first ahead
+
+
+def test_a_frame_whose_ph_map_cannot_be_written_is_a_failed_frame(tmp_path, runner):
+    """The pH TIFF is written with the frame's row: if it fails, that frame fails (and the rest go on)."""
+    spec = dataclasses.replace(SMALL, n_frames=3)
+    paths, _ = write_series(tmp_path / "f", spec)
+    prof = write_profile(tmp_path / "p.json", spec.px_per_mm)
+    blocked = tmp_path / "out" / "frames" / f"{paths[1].stem}_ph.tiff"
+    blocked.mkdir(parents=True)  # a folder where the TIFF should go
+    res = invoke(runner, ["droplet", tmp_path / "f", "--profile", prof, "--out", tmp_path / "out"])
+    assert res.exit_code == 1 and "Traceback" not in res.output
+    table = pd.read_csv(tmp_path / "out" / "droplet.csv").set_index("file")
+    assert table.loc[str(paths[1]), "status"] != "ok"
+    assert (table.drop(index=str(paths[1]))["status"] == "ok").all()
+    summary = json.loads((tmp_path / "out" / "droplet_summary.json").read_text())
+    assert summary["frames_failed"] == 1

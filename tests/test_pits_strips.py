@@ -31,17 +31,42 @@ from coupon.segment.pits import (
 )
 
 
+def _bilinear(small: np.ndarray, shape) -> np.ndarray:
+    """OpenCV's INTER_LINEAR sampling (pixel centres aligned, border replicated), in float64."""
+    h, w = shape
+    n, m = small.shape
+
+    def axis(k, size):
+        t = np.clip((np.arange(size) + 0.5) * k / size - 0.5, 0, k - 1)
+        i = np.minimum(np.floor(t).astype(int), max(k - 2, 0))
+        return i, np.minimum(i + 1, k - 1), t - i
+
+    y0, y1, ay = axis(n, h)
+    x0, x1, ax = axis(m, w)
+    s = small.astype(np.float64)
+    ay, ax = ay[:, None], ax[None, :]
+    return ((1 - ay) * ((1 - ax) * s[y0][:, x0] + ax * s[y0][:, x1])
+            + ay * ((1 - ax) * s[y1][:, x0] + ax * s[y1][:, x1]))
+
+
 @pytest.mark.parametrize("small_shape, shape", [((5, 7), (3 * STRIP_ROWS + 5, 301)), ((1, 9), (70, 40)),
                                                 ((2, 3), (200, 7)), ((37, 53), (500, 800)),
                                                 ((40, 30), (40, 30))])
-def test_row_upsampler_equals_opencv_resize(small_shape, shape):
-    """Every strip equals the same rows of cv2.resize(..., INTER_LINEAR) (reference library: OpenCV)."""
+def test_row_upsampler_equals_opencv_bilinear_sampling(small_shape, shape):
+    """Every strip equals the same rows of OpenCV's INTER_LINEAR enlargement: its formula in float64
+    (float32 rounding apart), and cv2.resize itself (reference library) within its own rounding."""
     rng = np.random.default_rng(3)
     small = rng.random(small_shape).astype(np.float32) * 4 - 2
-    ref = cv2.resize(small, (shape[1], shape[0]), interpolation=cv2.INTER_LINEAR)
+    exact = _bilinear(small, shape)
+    opencv = cv2.resize(small, (shape[1], shape[0]), interpolation=cv2.INTER_LINEAR)
     up = RowUpsampler(small, shape)
+    whole = up.rows(0, shape[0])
     for r0, r1 in [(0, shape[0]), (0, 1), (shape[0] - 3, shape[0]), (shape[0] // 3, shape[0] // 2 + 1)]:
-        np.testing.assert_allclose(up.rows(r0, r1), ref[r0:r1], rtol=0, atol=2e-6)
+        assert np.array_equal(up.rows(r0, r1), whole[r0:r1])  # a strip is exactly those rows of the whole
+    # the enlargement along rows is OpenCV's own, which without its IPP path (coupon turns IPP off) rounds
+    # its weights: about 1e-5 on values of +-2
+    np.testing.assert_allclose(whole, exact, rtol=0, atol=2e-5)
+    np.testing.assert_allclose(whole, opencv, rtol=0, atol=3e-5)
 
 
 @pytest.mark.parametrize("threshold", [0.0, 3.5, 40.0])
@@ -54,9 +79,15 @@ def test_row_upsampler_threshold_equals_thresholded_resize(threshold):
     outside = cv2.distanceTransform(np.pad(1 - small, 1, constant_values=1), cv2.DIST_L2, 5)[1:-1, 1:-1]
     sd = (np.where(small > 0, inside - 0.5, 0.5 - outside) * 7.5).astype(np.float32)
     shape = (675, 975)
-    ref = cv2.resize(sd, (shape[1], shape[0]), interpolation=cv2.INTER_LINEAR) > np.float32(threshold)
-    got = RowUpsampler(sd, shape).greater(threshold, np.empty(shape, bool))
-    assert np.array_equal(got, ref)
+    up = RowUpsampler(sd, shape)
+    got = up.greater(threshold, np.empty(shape, bool))
+    # the same as thresholding the whole enlargement strip by strip ...
+    assert np.array_equal(got, up.rows(0, shape[0]) > np.float32(threshold))
+    # ... and as thresholding OpenCV's bilinear sampling, but for pixels within float rounding of the threshold
+    exact = _bilinear(sd, shape)
+    clear = np.abs(exact - threshold) > 1e-4
+    assert clear.mean() > 0.99
+    assert np.array_equal(got[clear], (exact > threshold)[clear])
 
 
 def test_h_maxima_small_equals_scikit_image():
@@ -238,3 +269,73 @@ def test_pit_labels_block_centres_equal_slicing_the_map(shape):
         assert np.array_equal(labels.block_centres(k), full[k // 2::k, k // 2::k][:hb, :wb])
     empty = PitLabels(shape, np.zeros(0, np.int64), np.zeros(0, np.int32))
     assert not empty.block_centres(3).any()
+
+
+def test_opencv_distance_transform_is_repeatable_after_importing_coupon():
+    """Importing coupon turns OpenCV's IPP paths off: the precise distance transform is then the same on
+    every call and equals scipy's exact Euclidean distance transform (reference library). With IPP it
+    differed in the last digits between calls (OpenCV issue 24082), so touching pits split differently
+    from run to run."""
+    from scipy import ndimage as ndi
+
+    import coupon  # noqa: F401
+
+    assert not cv2.ipp.useIPP()
+    m = np.zeros((90, 140), np.uint8)
+    cv2.circle(m, (45, 45), 33, 1, -1)
+    cv2.circle(m, (100, 50), 27, 1, -1)
+    m = np.pad(m, 1)
+    ref = ndi.distance_transform_edt(m).astype(np.float32)
+    seen = set()
+    junk = []
+    for i in range(60):  # other allocations in between move the buffers about
+        junk.append(np.empty(int(1000 + 3001 * i % 150_000)))
+        if len(junk) > 4:
+            junk.pop(0)
+        d = cv2.distanceTransform(m, cv2.DIST_L2, cv2.DIST_MASK_PRECISE)
+        seen.add(d.tobytes())
+    assert len(seen) == 1
+    np.testing.assert_array_equal(d, ref)
+
+
+def test_one_opencv_thread_means_no_extra_threads_and_the_same_result():
+    """Batch workers hold OpenCV to one thread: the analysis then starts no threads of its own, same result."""
+    import threading
+
+    import coupon.segment.pits as pits
+
+    grey = _scene(seed=8, shape=(2 * pits.PARALLEL_MIN_STRIPS * STRIP_ROWS + 37, 640))
+    before = cv2.getNumThreads()
+    try:
+        region2 = find_region(grey, 10.0)
+        two = candidate_pixels(grey, background_map(grey, region2.coupon, 120.0), region2.coupon,
+                               region2.analysed, "dark", 0.12)
+        cv2.setNumThreads(1)
+        started = []
+        real_start = threading.Thread.start
+        threading.Thread.start = lambda self: (started.append(self.name), real_start(self))[1]
+        try:
+            region1 = find_region(grey, 10.0)
+            one = candidate_pixels(grey, background_map(grey, region1.coupon, 120.0), region1.coupon,
+                                   region1.analysed, "dark", 0.12)
+        finally:
+            threading.Thread.start = real_start
+    finally:
+        cv2.setNumThreads(before)
+    assert started == []
+    assert np.array_equal(region1.coupon, region2.coupon) and np.array_equal(region1.analysed, region2.analysed)
+    assert np.array_equal(one.idx, two.idx) and np.array_equal(one.strength, two.strength)
+
+
+def test_release_scratch_frees_the_reused_arrays():
+    from coupon.segment import pits
+
+    rgb = np.repeat(_scene(seed=3)[..., None], 3, axis=2)
+    pits.analyse_pits(rgb, pits.PitSettings(px_per_mm=10.0))
+    assert pits._SCRATCH.arrays
+    pits.release_scratch()
+    assert not pits._SCRATCH.arrays
+    res = pits.analyse_pits(rgb, pits.PitSettings(px_per_mm=10.0))  # made again on the next analysis
+    assert len(res.pits) > 0
+    with pytest.raises(ValueError):
+        np.asarray(res.labels, copy=False)

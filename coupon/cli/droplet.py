@@ -30,7 +30,7 @@ from coupon.cli.common import (
 )
 from coupon.errors import AnalysisError, CouponError
 from coupon.io import frametimes as ft
-from coupon.io.atomic import BackgroundWrites, defer, write_csv, write_float_tiff, write_json
+from coupon.io.atomic import BackgroundWrites, write_csv, write_float_tiff, write_json
 from coupon.io.batch import Prefetch, ResumeLedger, run_batch, settings_hash
 from coupon.io.images import LoadedImage, expand_image_paths, load_image, try_sha256
 from coupon.segment.droplet import (
@@ -94,9 +94,9 @@ def frame_rows(path: Path, job: DropletJob, img: LoadedImage | None = None) -> d
                 "sha256": img.sha256, "note": res.note, "status": "ok"})
     if res.drop_found:
         frames_dir = job.out_dir / "frames"
-        # written on the background writer when one is active (the map is this frame's own array)
-        tiff = defer(frames_dir / f"{path.stem}_ph.tiff", write_float_tiff, frames_dir / f"{path.stem}_ph.tiff",
-                     res.ph_map)
+        # written here, not on the background writer: a failed write then fails this frame's row (the
+        # writer's errors are only reported at the end, when the rows are already "ok")
+        tiff = write_float_tiff(frames_dir / f"{path.stem}_ph.tiff", res.ph_map)
         row["ph_tiff"] = str(tiff)
         if job.frame_figures:
             from coupon.report.droplet_figures import frame_figure

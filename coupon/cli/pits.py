@@ -55,7 +55,8 @@ SUMMARY_COLUMNS = [
 ]
 # 3: noise estimate from 250k samples; 2: touching pits split more often, 12.4 mm background window;
 # 4: the clipped fraction in the JSON comes from a quarter-million-pixel sample
-COMMAND_VERSION = 5  # 5: exposure and clipping sampled at block centres (the recorded clipped_pct moves slightly)
+# 5: exposure and clipping sampled at block centres (the recorded clipped_pct moves slightly)
+COMMAND_VERSION = 6  # 6: OpenCV without IPP (repeatable distance transforms: touching pairs split the same every run)
 CAUTION = ("Ratings and rates support, and do not replace, a qualified corrosion engineer and the governing "
            "standard (ASTM G1, G46) or specification; structural decisions need measured pit depths and "
            "licensed judgement.")
@@ -345,31 +346,32 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
     # in-process, the next image decodes on a helper thread while this one is analysed
     ahead = Prefetch(todo if workers <= 1 else [], job.load)
     func = (lambda p: pit_rows_for_image(p, job, ahead(p))) if workers <= 1 else job
-    for out in run_batch(todo, func, workers=workers, label="Pits"):
-        key = str(out.item)
-        if out.ok:
-            r = out.result
-            ledger.record(out.item, r["sha256"], item_settings[key], r["outputs"])
-            s = r["summary"]
-            for w in r["warnings"]:
-                click.echo(f"warning: {out.item}: {w}", err=True)
-            click.echo(f"{out.item}: {s['pit_count']} pits on {s['analysed_area_mm2'] / 100:.2f} cm2 "
-                       f"({_fmt(s['density_per_m2'], '.3g')} per m2), mean {_fmt(s['mean_area_mm2'], '.3f')} mm2, "
-                       f"G46 {s['g46_density'] or '-'} {s['g46_size'] or '-'} {s['g46_depth'] or '-'}, "
-                       f"deepest {_fmt(s['max_depth_mm'], '.3f')} mm, "
-                       f"Clark-Evans R {_fmt(s['clark_evans_r'], '.2f')} ({s['clark_evans_note']})"
-                       + (f", {_fmt(s['corrosion_rate_mm_y'], '.4g')} mm/y = {_fmt(s['corrosion_rate_mpy'], '.4g')} mpy,"
-                          f" pitting factor {_fmt(s['pitting_factor'], '.1f')}" if mass is not None else ""))
-            rows[key] = s
-            new_pits[key] = r["pits"]
-            failed += not record_rows(db, "pits", out.item, r["sha256"], db_settings, profile_sha,
-                                      {"pits": r["pits"], "pit_summary": [s]}, exposure_h=hours)
-        else:
-            failed += 1
-            report_failure(out.error, out.trace)
-            rows[key] = {c: np.nan for c in SUMMARY_COLUMNS} | {"image": key, "status": out.error}
-            new_pits[key] = []
-    ahead.close()
+    with ahead:
+        for out in run_batch(todo, func, workers=workers, label="Pits"):
+            key = str(out.item)
+            if out.ok:
+                r = out.result
+                ledger.record(out.item, r["sha256"], item_settings[key], r["outputs"])
+                s = r["summary"]
+                for w in r["warnings"]:
+                    click.echo(f"warning: {out.item}: {w}", err=True)
+                click.echo(f"{out.item}: {s['pit_count']} pits on {s['analysed_area_mm2'] / 100:.2f} cm2 "
+                           f"({_fmt(s['density_per_m2'], '.3g')} per m2), mean {_fmt(s['mean_area_mm2'], '.3f')} mm2, "
+                           f"G46 {s['g46_density'] or '-'} {s['g46_size'] or '-'} {s['g46_depth'] or '-'}, "
+                           f"deepest {_fmt(s['max_depth_mm'], '.3f')} mm, "
+                           f"Clark-Evans R {_fmt(s['clark_evans_r'], '.2f')} ({s['clark_evans_note']})"
+                           + (f", {_fmt(s['corrosion_rate_mm_y'], '.4g')} mm/y = "
+                              f"{_fmt(s['corrosion_rate_mpy'], '.4g')} mpy,"
+                              f" pitting factor {_fmt(s['pitting_factor'], '.1f')}" if mass is not None else ""))
+                rows[key] = s
+                new_pits[key] = r["pits"]
+                failed += not record_rows(db, "pits", out.item, r["sha256"], db_settings, profile_sha,
+                                          {"pits": r["pits"], "pit_summary": [s]}, exposure_h=hours)
+            else:
+                failed += 1
+                report_failure(out.error, out.trace)
+                rows[key] = {c: np.nan for c in SUMMARY_COLUMNS} | {"image": key, "status": out.error}
+                new_pits[key] = []
     ledger.flush()
     kept = old_pits[~old_pits["image"].astype(str).isin(list(new_pits))] if len(old_pits) else old_pits
     fresh = [r for v in new_pits.values() for r in v]

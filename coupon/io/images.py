@@ -160,7 +160,7 @@ def _header(data: bytes, path: Path, max_pixels: int) -> tuple[int, _dt.datetime
         with Image.open(io.BytesIO(data)) as im:
             width, height = im.size
             fmt = im.format
-            rgb_jpeg = fmt == "JPEG" and im.mode == "RGB"
+            rgb_jpeg = fmt in ("JPEG", "MPO") and im.mode == "RGB"  # MPO: a camera JPEG with extra pictures
             if width > 0 and height > 0 and width * height <= max_pixels:
                 exif = _read_exif(im)
     except UnidentifiedImageError:

@@ -136,7 +136,8 @@ class PitLabels:
     The (M, N) int32 map is ``np.asarray(labels)`` (or :meth:`full`): at 24 MP
     it is 96 MB, and the pits are a few per cent of the pixels, so the result
     keeps the list and the analysis reuses one scratch map from image to image
-    (:func:`_scratch`).
+    (:func:`_scratch`).  It is not an ndarray: compare or index the map
+    (``np.asarray(labels) == k``), not this object.
 
     Attributes
     ----------
@@ -160,6 +161,8 @@ class PitLabels:
         return out
 
     def __array__(self, dtype=None, copy=None):
+        if copy is False:
+            raise ValueError("PitLabels keeps a pixel list: the label map is always a new array")
         out = self.full()
         return out if dtype is None else out.astype(dtype)
 
@@ -195,16 +198,23 @@ def _scratch(name: str, shape: tuple[int, ...], dtype) -> np.ndarray:
     A batch analyses images of one size in turn; a fresh 96 MB label map per
     image costs page faults on first touch (10 to 150 ms on the test machine,
     depending on how fragmented its memory is), a reused one none.  Contents are
-    whatever the last user left.
+    whatever the last user left; they stay allocated until :func:`release_scratch`
+    or the thread's end.
     """
     arrays = getattr(_SCRATCH, "arrays", None)
     if arrays is None:
         arrays = _SCRATCH.arrays = {}
+    name = f"{name}:{np.dtype(dtype).str}"  # an 8-bit and a float grey level (a rectified view) do not evict each other
     a = arrays.get(name)
     if a is None or a.shape != tuple(shape) or a.dtype != np.dtype(dtype):
         arrays.pop(name, None)  # free the old one first: the peak is one array, not two
         a = arrays[name] = np.empty(shape, dtype)
     return a
+
+
+def release_scratch() -> None:
+    """Free this thread's scratch arrays (about 144 MB after a 24 MP scan); the next analysis makes them again."""
+    getattr(_SCRATCH, "arrays", {}).clear()
 
 
 @dataclass(frozen=True)
@@ -490,6 +500,12 @@ STRIP_ROWS = 64
 PARALLEL_MIN_STRIPS = 8
 
 
+def _threads() -> int:
+    """Threads the analysis may use beside OpenCV's own: OpenCV's thread count.  Batch workers hold
+    OpenCV to one thread each (``coupon.io.batch``), so ``--workers N`` keeps N cores busy, not 2 N."""
+    return cv2.getNumThreads()
+
+
 def _strips(h: int, rows: int = STRIP_ROWS):
     """(first, end) row ranges covering 0..h."""
     return [(r0, min(h, r0 + rows)) for r0 in range(0, h, rows)]
@@ -622,8 +638,12 @@ def find_region(grey: np.ndarray, edge_px: float, whole_frame: bool = False) -> 
     up = RowUpsampler(_signed_distance(small_mask) * np.float32(scale), (h, w))
     # the full-size signed distance is interpolated only about the outlines, one strip at a time; the two
     # masks on two threads (numpy's array loops release the GIL)
-    with ThreadPoolExecutor(max_workers=2) as pool:
-        coupon, analysed = pool.map(lambda t: up.greater(t, np.empty((h, w), bool)), (0.0, max(edge_px, 0.5)))
+    masks = lambda t: up.greater(t, np.empty((h, w), bool))  # noqa: E731
+    if _threads() > 1:
+        with ThreadPoolExecutor(max_workers=2) as pool:
+            coupon, analysed = pool.map(masks, (0.0, max(edge_px, 0.5)))
+    else:
+        coupon, analysed = masks(0.0), masks(max(edge_px, 0.5))
     return Region(coupon, analysed, "coupon found against the background")
 
 
@@ -768,7 +788,7 @@ def candidate_pixels(grey: np.ndarray, background: np.ndarray, coupon: np.ndarra
         return idx, vals, sample
 
     strips = _strips(h)
-    if len(strips) >= 2 * PARALLEL_MIN_STRIPS:
+    if len(strips) >= 2 * PARALLEL_MIN_STRIPS and _threads() > 1:
         # the top and bottom halves on two threads (OpenCV and numpy's array loops release the GIL);
         # concatenated in order, so the result is the one-thread result
         half = len(strips) // 2
