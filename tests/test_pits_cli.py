@@ -195,3 +195,20 @@ def test_rectify_uses_the_profile_homography(runner, tmp_path):
     assert abs(plain["analysed_area_mm2"] / rect["analysed_area_mm2"] - 1) > 0.03
     r = invoke(runner, ["pits", img, "--px-per-mm", 18, "--out", tmp_path / "c", "--rectify"])
     assert r.exit_code == 2 and "--rectify uses the homography" in r.output
+
+
+def test_one_worker_and_two_workers_give_the_same_pits(runner, tmp_path):
+    """Repeatable numbers: the same images give the same table in one process and in a pool of two
+    (with OpenCV's IPP paths on, a touching pair once split differently between the two)."""
+    imgs = []
+    for s in range(3):
+        rgb, _, _ = pitted_coupon_scene(seed=30 + s, coupon_mm=(45, 45), n_pits=45, touching_pairs=4)
+        imgs.append(write_rgb(tmp_path / f"c{s}.jpg", rgb))
+    tables = []
+    for workers in (1, 2):
+        r = invoke(runner, ["pits", *imgs, "--px-per-mm", 20, "--out", tmp_path / f"o{workers}",
+                            "--workers", workers])
+        assert r.exit_code == 0, r.output
+        tables.append(pd.read_csv(tmp_path / f"o{workers}" / "pits.csv"))
+    assert len(tables[0]) > 60
+    pd.testing.assert_frame_equal(tables[0], tables[1])
