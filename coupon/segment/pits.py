@@ -347,11 +347,9 @@ def grey_level(rgb: np.ndarray) -> np.ndarray:
     From 8-bit pixels, OpenCV's 8-bit conversion (3 ms at 24 MP; a float copy of
     the picture first takes 35 to 45 ms and 288 MB) rounds the luma to steps of
     1/255: an error of 0.0011 standard deviation, far below the sensor and JPEG
-    noise of a scan.
+    noise of a scan.  The float version of :func:`grey_pixels`.
     """
-    if rgb.dtype == np.uint8:
-        return float01(cv2.cvtColor(rgb, cv2.COLOR_RGB2GRAY))
-    return cv2.cvtColor(np.asarray(rgb, dtype=np.float32), cv2.COLOR_RGB2GRAY)
+    return float01(grey_pixels(rgb))
 
 
 def grey_pixels(rgb: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
