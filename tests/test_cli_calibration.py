@@ -328,3 +328,23 @@ def test_resume_ledger_is_written_at_the_end_and_every_few_seconds(tmp_path, mon
     monkeypatch.setattr(ResumeLedger, "FLUSH_EVERY_S", 0.0)
     led.record(tmp_path / "b.jpg", "cd", "s1", [])
     assert ResumeLedger(tmp_path, "x").is_done(tmp_path / "b.jpg", "cd", "s1")  # written when due
+
+
+def test_commands_are_imported_when_asked_for():
+    """Every listed command loads; a job's command imports its own modules only (start-up time)."""
+    import subprocess
+    import sys
+
+    import click
+
+    from coupon.cli.main import COMMANDS, cli
+
+    ctx = click.Context(cli)
+    assert cli.list_commands(ctx) == sorted({attr for _, attr in COMMANDS})
+    for _, attr in COMMANDS:
+        assert cli.get_command(ctx, attr).name == attr
+    code = ("import sys\nfrom coupon.cli.main import cli\ntry:\n    cli(['pits', '--help'], standalone_mode=False)\n"
+            "except SystemExit:\n    pass\nprint(sorted(m for m in ('coupon.cli.panels', 'coupon.cli.droplet', "
+            "'coupon.cli.report', 'matplotlib') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip().splitlines()[-1] == "[]"

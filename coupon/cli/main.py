@@ -40,7 +40,26 @@ standard or specification.
 """
 
 
-@click.group(help=HELP, context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
+class _CommandsOnDemand(click.Group):
+    """The commands of :data:`COMMANDS`, each imported when it is first asked for.
+
+    ``coupon pits ...`` then imports the pits modules only (about 0.8 s) instead of every job's modules,
+    matplotlib included (about 1.6 s); ``coupon --help`` still imports them all for their help lines.
+    """
+
+    def list_commands(self, ctx: click.Context) -> list[str]:
+        return sorted(set(super().list_commands(ctx)) | {attr for _, attr in COMMANDS})
+
+    def get_command(self, ctx: click.Context, name: str) -> click.Command | None:
+        if name not in self.commands:
+            for module, attr in COMMANDS:
+                if attr == name:
+                    self.add_command(getattr(importlib.import_module(module), attr))
+        return super().get_command(ctx, name)
+
+
+@click.group(cls=_CommandsOnDemand, help=HELP,
+             context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
 @click.version_option(__version__, "--version", prog_name="coupon")
 @click.option("--debug", is_flag=True, help="Show full tracebacks for errors.")
 @click.pass_context
@@ -48,10 +67,6 @@ def cli(ctx: click.Context, debug: bool) -> None:
     ctx.ensure_object(dict)
     ctx.obj["debug"] = debug
     install_warning_printer(ctx)
-
-
-for _module, _attr in COMMANDS:
-    cli.add_command(getattr(importlib.import_module(_module), _attr))
 
 
 def main() -> None:
