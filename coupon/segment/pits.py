@@ -755,7 +755,7 @@ def candidate_pixels(grey: np.ndarray, background: np.ndarray, coupon: np.ndarra
     # itself is divided out at the candidates and the noise sample only
     gain = np.float32(1.0 - min_contrast if dark else 1.0 + min_contrast)
     up = RowUpsampler(np.asarray(background, np.float32) * gain, (h, w))
-    nstep = max(1, int(np.sqrt(h * w / noise_samples)))
+    nstep = sample_step(h * w, noise_samples)
     halo = 2  # the 5 x 5 Gaussian reads two rows either side
     # smooth_grey's Gaussian as one separable filter straight from the 8-bit grey level to float (the
     # 1/255 scaling folded into the row kernel): no float copy of the strip first
@@ -1090,7 +1090,7 @@ def surface_reference(height_mm: np.ndarray, surface: np.ndarray, exclude: np.nd
     Returns the 6 coefficients (coordinates divided by the larger image side) and
     a dict with the residual sigma and the fraction kept.
     """
-    step = max(1, int(np.sqrt(surface.size / max_samples)))
+    step = sample_step(surface.size, max_samples)
     sub = surface[::step, ::step] & np.isfinite(height_mm[::step, ::step])
     if exclude is not None:
         sub &= exclude[::step, ::step] == 0
@@ -1174,16 +1174,14 @@ def object_moments(labels: np.ndarray) -> dict[str, np.ndarray]:
     return _moments(idx, labels.ravel()[idx], int(labels.max()), labels.shape[1])
 
 
-def _moment_sums(idx: np.ndarray, lab: np.ndarray, n: int, ncols: int,
-                 rc: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
+def _moment_sums(idx: np.ndarray, lab: np.ndarray, n: int, ncols: int) -> np.ndarray:
     """Raw pixel moments per label 0..n-1 from a pixel list: (6, n) float64 rows
     count, sum of rows, sum of cols, of rows squared, of cols squared, of rows times cols.
 
     Sums add up, so the moments of objects changed later (a watershed split) are
-    recounted from their own pixels only.  ``rc``: the pixels' rows and columns,
-    when already known (``np.divmod(idx, ncols)``).
+    recounted from their own pixels only.
     """
-    r, c = np.divmod(idx, ncols) if rc is None else rc
+    r, c = np.divmod(idx, ncols)
     r, c = r.astype(np.float64), c.astype(np.float64)
     return np.stack([np.bincount(lab, minlength=n).astype(np.float64), np.bincount(lab, r, n),
                      np.bincount(lab, c, n), np.bincount(lab, r * r, n), np.bincount(lab, c * c, n),
