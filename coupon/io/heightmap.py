@@ -111,8 +111,8 @@ def load_height_map(path: str | os.PathLike, unit: str, shape_rc: tuple[int, int
 def read_height_map(path: str | os.PathLike, unit: str) -> np.ndarray:
     """The stored values of a height map, as read (the slow part of :func:`load_height_map`).
 
-    ``coupon pits`` reads the map on a second thread while the image decodes,
-    then checks and converts it with :func:`height_map_to_mm`.
+    ``coupon pits`` reads and converts the map on a second thread while the image
+    decodes (:func:`read_height_map_mm`).
 
     Raises
     ------
