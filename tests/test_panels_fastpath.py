@@ -257,9 +257,14 @@ def test_strip_unmix_matches_the_whole_panel_computation(tray_panels):
         assert m.score.dtype == m.fraction.dtype == m.light.dtype == np.float32
         # float32 rounding of the same operations in another order: a pixel on a threshold may flip
         assert (m.rust_wins != wins).sum() <= max(2, 1e-5 * wins.size)
-        same = m.rust_wins == wins
         np.testing.assert_allclose(m.light, light, rtol=1e-5)
         np.testing.assert_allclose(m.neutral_dev, neutral_dev, atol=1e-5)
+        # a rust pixel on the threshold of the per-pixel test may also be found by the pooled test
+        # instead (another fraction and score): with OpenCV 5.0, 1 pixel of 1.1 million on the white panel
+        same = m.rust_wins == wins
+        other_test = same & ~np.isclose(m.fraction, fraction, rtol=0, atol=1e-5)
+        assert other_test.sum() <= max(2, 1e-5 * wins.size)
+        same &= ~other_test
         np.testing.assert_allclose(m.fraction[same], fraction[same], atol=1e-5)
         np.testing.assert_allclose(m.score[same], score[same], rtol=1e-4, atol=1e-3)
         assert m.noise_fraction == pytest.approx(noise, rel=1e-3)
