@@ -174,3 +174,21 @@ def test_panel_threads_give_the_rows_of_one_thread(tray_file, tmp_path, monkeypa
         ja, jb = (json.loads(Path(r["json"]).read_text()) for r in (a, b))
         assert {k: v for k, v in jb.items() if k not in ("overlay", "json")} == \
                {k: v for k, v in ja.items() if k not in ("overlay", "json")}
+
+
+@pytest.mark.slow
+def test_one_worker_and_two_workers_give_the_same_panels(runner, tray_file, tmp_path):
+    # --workers 2 rates the photos in a pool of two processes (forked from a server that built
+    # OpenCV's tables first, coupon.io.pool_preload); the table must equal the in-process one
+    import shutil
+
+    path, _ = tray_file
+    photos = [shutil.copy(path, tmp_path / f"rack{k}_0240h.jpg") for k in range(3)]
+    tables = []
+    for workers in (1, 2):
+        r = invoke(runner, ["panels", *photos, "--out", tmp_path / f"o{workers}", "--workers", workers])
+        assert r.exit_code == 0, r.output
+        t = pd.read_csv(tmp_path / f"o{workers}" / "panels.csv", dtype={"panel_id": str})
+        tables.append(t.drop(columns=["overlay", "json"]))
+    assert len(tables[0]) == 6 and (tables[0]["status"] == "ok").all()
+    pd.testing.assert_frame_equal(tables[0], tables[1])

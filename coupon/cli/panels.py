@@ -36,6 +36,7 @@ from coupon.io.images import (
     try_sha256,
 )
 from coupon.io.tables import read_previous
+from coupon.io.warmup import warm_in_background, warm_opencv
 from coupon.report.panel_figures import write_panel_overlay
 from coupon.segment.panels import PanelSettings, rate_panel
 from coupon.segment.panels.detect import (
@@ -164,6 +165,7 @@ def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out
         The image cannot be read, or no panel is found in it.
     """
     img = load_image(path, max_pixels=max_pixels)
+    warm_opencv()  # the Lab tables find_panels needs: built by now on the command's helper thread, or here
     # an 8-bit photo is worked from its decoded pixels: no float copy of the whole tray (144 MB at 12 MP)
     pixels = img.rgb_u8 if img.rgb_u8 is not None else img.rgb
     quads = find_panels(pixels)
@@ -332,6 +334,8 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
     standard or specification.
     """
     size = parse_size(panel_size, "--panel-size")
+    if workers <= 1:
+        warm_in_background()  # OpenCV's tables, built while the images are hashed and the first one decoded
     mask_specs = tuple(parse_mask(m) for m in masks)
     layout = read_layout(layout_path) if layout_path else None
     manifest = read_manifest(manifest_path) if manifest_path else None

@@ -64,7 +64,8 @@ def _pool_context():
         return multiprocessing.get_context("spawn")
     ctx = multiprocessing.get_context("forkserver")
     # the server imports the heavy libraries once; each worker is then a cheap fork of it
-    ctx.set_forkserver_preload(["numpy", "cv2", "scipy.ndimage", "pandas", "skimage.measure", "coupon.io.images"])
+    ctx.set_forkserver_preload(["numpy", "cv2", "scipy.ndimage", "pandas", "skimage.measure", "coupon.io.images",
+                                "coupon.io.pool_preload"])
     return ctx
 
 
