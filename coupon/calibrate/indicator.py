@@ -33,12 +33,12 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 from scipy import ndimage as ndi
-from scipy.interpolate import PchipInterpolator
-from scipy.spatial import cKDTree
-from skimage.filters import threshold_otsu
 
 from coupon.calibrate import colourspace as cs
 from coupon.errors import CalibrationError, CouponError
+
+# scipy.interpolate, scipy.spatial and skimage.filters are imported where they are used: together
+# they cost about 0.3 s, which every command paid at start-up through the profile module.
 
 #: Default tolerance: weighted CIELAB distance beyond which a colour is "not indicator".
 DEFAULT_MAX_DISTANCE = 10.0
@@ -84,12 +84,16 @@ class IndicatorModel:
     # -- the path -------------------------------------------------------
     @functools.cached_property
     def _path(self) -> tuple[np.ndarray, np.ndarray]:
+        from scipy.interpolate import PchipInterpolator
+
         ph_dense = np.arange(self.ph[0], self.ph[-1] + PATH_STEP_PH / 2, PATH_STEP_PH)
         lab_dense = PchipInterpolator(self.ph, self.lab, axis=0)(ph_dense)
         return ph_dense, lab_dense
 
     @functools.cached_property
-    def _tree(self) -> cKDTree:
+    def _tree(self) -> cKDTree:  # noqa: F821 - scipy.spatial.cKDTree, imported here
+        from scipy.spatial import cKDTree
+
         return cKDTree(self._weight(self._path[1]))
 
     def _weight(self, lab: np.ndarray) -> np.ndarray:
@@ -99,6 +103,8 @@ class IndicatorModel:
 
     def colour_at(self, ph: np.ndarray) -> np.ndarray:
         """CIELAB on the path at the given pH (clipped to the calibrated range)."""
+        from scipy.interpolate import PchipInterpolator
+
         ph = np.clip(np.asarray(ph, dtype=np.float64), self.ph[0], self.ph[-1])
         return PchipInterpolator(self.ph, self.lab, axis=0)(ph)
 
@@ -276,6 +282,8 @@ def _check_no_fold(model: IndicatorModel) -> None:
     pts = model._weight(lab_d[sub])
     phs = ph_d[sub]
     arc = np.concatenate([[0.0], np.cumsum(np.linalg.norm(np.diff(pts, axis=0), axis=1))])
+    from scipy.spatial import cKDTree
+
     r = 0.5 * model.max_distance
     pairs = cKDTree(pts).query_pairs(r=r, output_type="ndarray")
     if len(pairs):
@@ -347,6 +355,8 @@ def _foreground(lab_w: np.ndarray, rounds: int = 3) -> np.ndarray:
     lighting gradient across the frame does not hide pale drops; the threshold
     is the lower of Otsu's and the background's spread (median + 8 robust sigma).
     """
+    from skimage.filters import threshold_otsu
+
     h, w = lab_w.shape[:2]
     y, x = np.mgrid[0:h, 0:w]
     x = x.ravel() / w - 0.5

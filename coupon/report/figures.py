@@ -17,10 +17,7 @@ import numpy as np  # noqa: E402
 
 from coupon.io.atomic import save_figure  # noqa: E402
 
-PH_CMAP = "viridis"
-NO_DATA_GREY = (0.78, 0.78, 0.78)
-#: Okabe & Ito (2008), "Color universal design": colour-blind-safe categorical palette.
-PALETTE = ("#0072B2", "#E69F00", "#009E73", "#D55E00", "#CC79A7", "#56B4E9", "#F0E442", "#000000")
+from coupon.report.palette import NO_DATA_GREY, PALETTE, PH_CMAP  # noqa: E402, F401 - re-exported
 
 
 def ph_colormap():

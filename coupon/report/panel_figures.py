@@ -1,6 +1,6 @@
 """Overlay pictures of rated panels, drawn with OpenCV on the rectified panel.
 
-Colours (our own choice from the project palette in :mod:`coupon.report.figures`,
+Colours (our own choice from the project palette in :mod:`coupon.report.palette`,
 picked to stand out on white, grey and dark coatings and against rust):
 
 * rust outline: sky blue; rated-area boundary: yellow with a black rim;
@@ -18,7 +18,7 @@ import numpy as np
 from coupon.calibrate import colourspace as cs
 from coupon.io.atomic import write_image
 from coupon.io.images import to_uint8
-from coupon.report.figures import PALETTE
+from coupon.report.palette import PALETTE
 
 
 def _rgb255(hex_colour: str) -> tuple[int, int, int]:
