@@ -202,3 +202,22 @@ def test_clipped_fraction_on_eight_bit_pixels():
     for px in (u8, u8.astype(np.float32) / np.float32(255)):
         _, bright = exposure_sample(px, cv2.cvtColor(px, cv2.COLOR_RGB2GRAY))
         assert clipped_fraction(bright, where) == pytest.approx(0.5)
+
+
+def test_overlay_from_a_background_made_ahead_is_the_same_overlay():
+    # the pits command draws the overlay's background while the pits are found (analyse_pits's
+    # on_region hook); the overlay drawn on it must be the one drawn in one go
+    from coupon.report.pit_figures import overlay_background
+    from coupon.segment.pits import PitSettings, analyse_pits
+    from coupon.synth.pits import pitted_coupon_scene
+
+    rgb, _, _ = pitted_coupon_scene(seed=44, coupon_mm=(52, 20), margin_mm=2, px_per_mm=45.0, n_pits=25)
+    u8 = np.clip(np.rint(rgb * 255), 0, 255).astype(np.uint8)
+    seen = []
+    res = analyse_pits(u8, PitSettings(px_per_mm=45.0), on_region=lambda pic, an: seen.append((pic, an.copy())))
+    assert len(seen) == 1 and seen[0][0] is u8
+    np.testing.assert_array_equal(seen[0][1], res.analysed)
+    assert max(u8.shape[:2]) > 2400 and len(res.pits) > 10  # the reduced path (k > 1), with pits drawn
+    bg = overlay_background(seen[0][0], seen[0][1])
+    ahead = overlay_image(u8, res.labels, res.analysed, res.pits, 45.0, background=bg)
+    np.testing.assert_array_equal(ahead, overlay_image(u8, res.labels, res.analysed, res.pits, 45.0))

@@ -32,6 +32,7 @@ from coupon.io.tables import read_previous
 from coupon.ratings import mass_loss as ml
 from coupon.ratings.pitting import MassLoss, summarise_pits
 from coupon.report.pit_figures import (
+    overlay_background,
     size_histogram,
     size_histogram_figure,
     write_overlay,
@@ -136,7 +137,11 @@ def _pit_rows(path: Path, job: PitJob, hpath: Path | None, known: str | None, re
         hom = None if job.homography is None else np.asarray(job.homography, dtype=np.float64)
         # an 8-bit picture is analysed from its decoded pixels: no float copy of a 24 MP scan (288 MB)
         pixels = img.rgb_u8 if img.rgb_u8 is not None else img.rgb
-        res = analyse_pits(pixels, job.settings, height, homography_px_to_mm=hom, height_unit=job.height_unit)
+        # the overlay's background (the reduced picture, dimmed outside the analysed region) is drawn on the
+        # helper thread as soon as the region is known, while this thread finds the pits
+        backgrounds = []
+        res = analyse_pits(pixels, job.settings, height, homography_px_to_mm=hom, height_unit=job.height_unit,
+                           on_region=lambda pic, an: backgrounds.append(helpers.submit(overlay_background, pic, an)))
     except AnalysisError as exc:
         if exc.path is not None:
             raise
@@ -148,18 +153,19 @@ def _pit_rows(path: Path, job: PitJob, hpath: Path | None, known: str | None, re
             "check --height-unit and that the map is registered to the image", hpath)
     stem = path.stem
     shown = res.rectified_rgb if res.rectified_rgb is not None else pixels
-    # the overlay is drawn and encoded on the helper thread (queued after the height map's hash, which
-    # is done by now) while this thread draws the histogram and builds the rows
-    overlay_future = helpers.submit(write_overlay, job.out_dir / f"{stem}_pits.png", shown, res.labels,
-                                    res.analysed, res.pits, job.settings.px_per_mm)
+    # the histogram is drawn on the helper thread (after the overlay's background, done by now) while this
+    # thread draws the pits on the background and encodes the overlay
+    hist_future = helpers.submit(size_histogram_figure, res.pits, job.out_dir / f"{stem}_pit_sizes.png",
+                                 title=f"{path.name}: pit sizes")
     try:
-        hist = size_histogram_figure(res.pits, job.out_dir / f"{stem}_pit_sizes.png",
-                                     title=f"{path.name}: pit sizes")
+        background = backgrounds[0].result() if backgrounds else None
+        overlay = write_overlay(job.out_dir / f"{stem}_pits.png", shown, res.labels, res.analysed, res.pits,
+                                job.settings.px_per_mm, background=background)
         pit_rows = [{"image": str(path)} | r for r in res.pits.to_dict("records")]
     except BaseException:
-        wait([overlay_future])  # no overlay is left being written behind a failed image
+        wait([hist_future])  # no histogram is left being written behind a failed image
         raise
-    overlay = overlay_future.result()
+    hist = hist_future.result()
     record = {
         "tool": "coupon pits", "coupon_version": __version__, "command_version": COMMAND_VERSION,
         "image": {"path": str(path), "sha256": img.sha256, "size_px": list(img.shape_rc[::-1]),

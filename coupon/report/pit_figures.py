@@ -9,6 +9,7 @@ excluded edge band dimmed.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from pathlib import Path
 
 import cv2
@@ -76,27 +77,36 @@ def block_centres(img: np.ndarray, k: int) -> np.ndarray:
     return np.ascontiguousarray(img[k // 2::k, k // 2::k][:hb, :wb])
 
 
-def overlay_image(rgb: np.ndarray, labels, analysed: np.ndarray, pits: pd.DataFrame,
-                  px_per_mm: float, max_side_px: int = 2400) -> np.ndarray:
-    """The picture with pits outlined and numbered, as uint8 RGB.
+@dataclass
+class OverlayBackground:
+    """The overlay's picture before the pits are drawn: reduced or enlarged, dimmed outside the
+    analysed region, its border dashed (:func:`overlay_background`).
 
-    A picture longer than ``max_side_px`` is reduced by an integer factor first
-    (6000 px becomes 2000 px) and everything is drawn on the reduced copy with
-    OpenCV: outlines, numbers, the dashed border of the analysed region and a
-    legend strip.  ``labels``: the (M, N) pit-id map, or the analysis's
-    ``PitLabels`` pixel list (sampled without making the map).
+    ``picture`` is drawn on by :func:`overlay_image`, so one background serves one overlay.
     """
-    h, w = labels.shape
+
+    picture: np.ndarray
+    analysed: np.ndarray  # the analysed region at the picture's size (bool)
+    k: int  # integer reduction (1: none)
+    f: float  # enlargement of a small picture (1: none)
+    size: tuple[int, int]  # (width, height) of the picture
+    scale_xy: float  # picture px per source px
+
+
+def overlay_background(rgb: np.ndarray, analysed: np.ndarray, max_side_px: int = 2400) -> OverlayBackground:
+    """The first stage of :func:`overlay_image`: everything that needs only the picture and the region.
+
+    The pits command draws it on its helper thread as soon as the region is known, while the pits
+    are still being found, so that only the pits are left to draw once they are.
+    """
+    h, w = analysed.shape
     k, f = _overlay_factor((h, w), max_side_px)
-    if k == 1 and not isinstance(labels, np.ndarray):
-        labels = np.asarray(labels)  # a PitLabels pixel list: the full map of a picture this small is cheap
     if k > 1:
         # nearest-pixel sampling (the centre pixel of each k x k block) of picture, labels and region alike:
         # outlines stay exactly on the picture's pixels, and only one pixel in k*k is read and converted to
         # 8 bits (an area reduction of the whole frame took 60 ms of the job at 24 MP, this takes about 8)
         picked = block_centres(np.asarray(rgb), k)
         small = picked if picked.dtype == np.uint8 else cv2.convertScaleAbs(picked, alpha=255.0)
-        lab = labels.block_centres(k) if hasattr(labels, "block_centres") else block_centres(labels, k)
         an = block_centres(analysed, k)
         size = (small.shape[1], small.shape[0])  # the whole blocks
         scale_xy = 1.0 / k
@@ -104,7 +114,6 @@ def overlay_image(rgb: np.ndarray, labels, analysed: np.ndarray, pits: pd.DataFr
         size = (max(1, int(round(w * f))), max(1, int(round(h * f))))
         src = rgb if rgb.dtype == np.uint8 else np.asarray(rgb, np.float32)
         small = cv2.resize(src, size, interpolation=cv2.INTER_LINEAR) if f != 1 else rgb
-        lab = cv2.resize(labels, size, interpolation=cv2.INTER_NEAREST) if f != 1 else labels
         an = (cv2.resize(analysed.view(np.uint8), size, interpolation=cv2.INTER_NEAREST) if f != 1
               else analysed.view(np.uint8)).astype(bool)
         scale_xy = f
@@ -119,6 +128,30 @@ def overlay_image(rgb: np.ndarray, labels, analysed: np.ndarray, pits: pd.DataFr
     dashes = [c[k0:k0 + 8] for c in contours for k0 in range(0, len(c), 16) if len(c[k0:k0 + 8]) > 1]
     if dashes:
         cv2.polylines(out, dashes, False, (255, 255, 255), 1, cv2.LINE_AA)
+    return OverlayBackground(out, an, k, f, size, scale_xy)
+
+
+def overlay_image(rgb: np.ndarray, labels, analysed: np.ndarray, pits: pd.DataFrame,
+                  px_per_mm: float, max_side_px: int = 2400, background: OverlayBackground | None = None
+                  ) -> np.ndarray:
+    """The picture with pits outlined and numbered, as uint8 RGB.
+
+    A picture longer than ``max_side_px`` is reduced by an integer factor first
+    (6000 px becomes 2000 px) and everything is drawn on the reduced copy with
+    OpenCV: outlines, numbers, the dashed border of the analysed region and a
+    legend strip.  ``labels``: the (M, N) pit-id map, or the analysis's
+    ``PitLabels`` pixel list (sampled without making the map).  ``background``:
+    :func:`overlay_background` of the same picture and region, made ahead (it is
+    drawn on); made here when None.
+    """
+    bg = overlay_background(rgb, analysed, max_side_px) if background is None else background
+    out, k, f, size, scale_xy = bg.picture, bg.k, bg.f, bg.size, bg.scale_xy
+    if k == 1 and not isinstance(labels, np.ndarray):
+        labels = np.asarray(labels)  # a PitLabels pixel list: the full map of a picture this small is cheap
+    if k > 1:
+        lab = labels.block_centres(k) if hasattr(labels, "block_centres") else block_centres(labels, k)
+    else:
+        lab = cv2.resize(labels, size, interpolation=cv2.INTER_NEAREST) if f != 1 else labels
     if len(pits):
         classes = size_class(pits["area_mm2"].to_numpy())
         # outline = label pixels with a neighbour of another label
@@ -172,14 +205,14 @@ def encode_overlay(rgb_u8: np.ndarray, dest: str | Path) -> tuple[Path, bytes]:
 
 
 def write_overlay(dest: str | Path, rgb: np.ndarray, labels, analysed: np.ndarray,
-                  pits: pd.DataFrame, px_per_mm: float) -> Path:
+                  pits: pd.DataFrame, px_per_mm: float, background: OverlayBackground | None = None) -> Path:
     """Write the overlay (atomically); return the path written.
 
     A big overlay (more than :data:`JPEG_ABOVE_PX` pixels) goes to ``<stem>.jpg``
     beside ``dest`` instead of the ``.png`` asked for; callers record the path
-    returned.
+    returned.  ``background``: see :func:`overlay_image`.
     """
-    path, data = encode_overlay(overlay_image(rgb, labels, analysed, pits, px_per_mm), dest)
+    path, data = encode_overlay(overlay_image(rgb, labels, analysed, pits, px_per_mm, background=background), dest)
     with atomic_path(path) as tmp:
         tmp.write_bytes(data)
     return path

@@ -34,6 +34,7 @@ measured from the image's top-left pixel corner: x along columns, y down rows.
 from __future__ import annotations
 
 import threading
+from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
@@ -1351,7 +1352,8 @@ def _measure(labels: np.ndarray, px_per_mm: float, height_mm: np.ndarray | None,
 # -- all steps -------------------------------------------------------------------
 
 def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray | None = None, *,
-                 homography_px_to_mm: np.ndarray | None = None, height_unit: str | None = None) -> PitAnalysis:
+                 homography_px_to_mm: np.ndarray | None = None, height_unit: str | None = None,
+                 on_region: Callable[[np.ndarray, np.ndarray], None] | None = None) -> PitAnalysis:
     """Find, split and measure the pits of one cleaned coupon image.
 
     Parameters
@@ -1367,6 +1369,11 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
         square-on one is used as it is; one beyond 35 degrees is refused.
     height_unit : {'um', 'mm'}, optional
         The unit the height map was declared in, for the hint of the relief check.
+    on_region : callable, optional
+        Called as ``on_region(picture, analysed)`` as soon as the analysed region is known and
+        checked, with the picture the pits are found in (the rectified one after a homography) and
+        the analysed mask; neither may be changed.  The pits command starts drawing its overlay
+        then, on another thread, while the pits are found.
 
     Raises
     ------
@@ -1401,6 +1408,8 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
     if clipped > 0.05:
         raise AnalysisError(f"coupon surface is overexposed ({100 * clipped:.0f} % of its pixels clipped at white); "
                             "reduce the exposure so the metal is not saturated")
+    if on_region is not None:
+        on_region(rgb, analysed)
     # a quarter of a million points estimate the noise (robust sigma: its standard error is about 0.2 %)
     cands = candidate_pixels(grey, background_map(grey, coupon, settings.flatten_mm * s), coupon, analysed,
                              settings.look, settings.min_contrast)
