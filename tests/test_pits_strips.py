@@ -339,3 +339,29 @@ def test_release_scratch_frees_the_reused_arrays():
     assert len(res.pits) > 0
     with pytest.raises(ValueError):
         np.asarray(res.labels, copy=False)
+
+
+def test_split_of_many_objects_at_once_equals_one_at_a_time():
+    """The objects offered for splitting are split side by side in one mosaic: each result must be the
+    one of the object split alone (touching pairs and triples of discs, single discs, ellipses)."""
+    from coupon.segment.pits import _split_objects
+
+    rng = np.random.default_rng(12)
+    objs = []
+    for k in range(40):
+        m = np.zeros((140, 160), np.uint8)
+        n = k % 4  # 0: an ellipse, 1: one disc, 2: a pair, 3: a triple
+        if n == 0:
+            cv2.ellipse(m, (80, 70), (int(rng.integers(12, 40)), int(rng.integers(6, 20))),
+                        float(rng.uniform(0, 180)), 0, 360, 1, -1)
+        for _ in range(n):
+            cv2.circle(m, (int(rng.integers(45, 115)), int(rng.integers(45, 95))), int(rng.integers(6, 30)), 1, -1)
+        rows, cols = np.flatnonzero(m.any(axis=1)), np.flatnonzero(m.any(axis=0))
+        objs.append(m[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1].astype(bool))
+    together = _split_objects(objs)
+    alone = [_split_objects([o])[0] for o in objs]
+    assert sum(p is not None for p in alone) >= 15  # pairs and triples do split
+    for a, b in zip(together, alone):
+        assert (a is None) == (b is None)
+        if a is not None:
+            np.testing.assert_array_equal(a, b)
