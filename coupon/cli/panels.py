@@ -27,9 +27,10 @@ from coupon.cli.common import (
 )
 from coupon.errors import AnalysisError, CouponError
 from coupon.io.atomic import write_csv, write_json
-from coupon.io.batch import ResumeLedger, run_batch, settings_hash
+from coupon.io.batch import Prefetch, ResumeLedger, run_batch, settings_hash
 from coupon.io.images import (
     DEFAULT_MAX_PIXELS,
+    LoadedImage,
     expand_image_paths,
     file_sha256,
     load_image,
@@ -154,17 +155,19 @@ def panel_threads() -> int:
 
 def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out_dir: Path,
                layout: dict | None = None, exposure_h: float | None = None,
-               max_pixels: int = DEFAULT_MAX_PIXELS) -> list[dict]:
+               max_pixels: int = DEFAULT_MAX_PIXELS, img: LoadedImage | None = None) -> list[dict]:
     """Rate every panel in one tray photo; write its overlays and JSON files; return the CSV rows.
 
     The panels are rated on :func:`panel_threads` threads; the rows come back in tray order.
+    ``img``: the photo already loaded (by a :class:`~coupon.io.batch.Prefetch`), or None to load it here.
 
     Raises
     ------
     ImageLoadError, AnalysisError
         The image cannot be read, or no panel is found in it.
     """
-    img = load_image(path, max_pixels=max_pixels)
+    if img is None:
+        img = load_image(path, max_pixels=max_pixels)
     warm_opencv()  # the Lab tables find_panels needs: built by now on the command's helper thread, or here
     # an 8-bit photo is worked from its decoded pixels: no float copy of the whole tray (144 MB at 12 MP)
     pixels = img.rgb_u8 if img.rgb_u8 is not None else img.rgb
@@ -278,9 +281,12 @@ class PanelsJob:
             return self.hours
         return hours_from_name(path)
 
-    def __call__(self, path: Path) -> list[dict]:
+    def __call__(self, path: Path, img: LoadedImage | None = None) -> list[dict]:
         return rate_image(path, self.settings, self.profile, self.out_dir, self.layout, self.exposure_for(path),
-                          self.max_pixels)
+                          self.max_pixels, img)
+
+    def load(self, path: Path) -> LoadedImage:
+        return load_image(path, max_pixels=self.max_pixels)
 
 
 EXAMPLE = """
@@ -378,29 +384,33 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
                                           {"panels": by_image[str(p)]}, exposure_h=job.exposure_for(p))
             continue
         todo.append(p)
-    for out in run_batch(todo, job, workers=workers, label="Rating panels"):
-        if out.ok:
-            rows = out.result
-            bad = [r for r in rows if r["status"] != "ok"]
-            failed += bool(bad)
-            for r in bad:
-                report_failure(f"{out.item} {r['position']}: {r['status']}")
-            sha = shas[str(out.item)] or file_sha256(out.item)  # hashed once, in the pre-scan
-            outputs = [r[k] for r in rows for k in ("overlay", "json") if isinstance(r.get(k), str)]
-            ledger.record(out.item, sha, digest, outputs, "ok" if not bad else "partial")
-            failed += not record_rows(db, "panels", out.item, sha, db_settings, profile_sha, {"panels": rows},
-                                      exposure_h=job.exposure_for(out.item))
-            for r in rows:
-                if r["status"] == "ok":
-                    extra = f", creep {r['creep_mean_mm']:.2f} mm" if r["scribe_found"] else ""
-                    click.echo(f"{out.item} {r['position']} {r['panel_id']}: rust {r['rust_area_pct']:.2f} % "
-                               f"(+/- {r['rust_area_pct_unc']:.2f}), D610 {r['rust_grade_written']}, "
-                               f"{r['ri_degree']}{extra}")
-        else:
-            failed += 1
-            report_failure(out.error, out.trace)
-            rows = [_empty_row(str(out.item), out.error)]
-        by_image[str(out.item)] = rows
+    # in-process, the next photo decodes on a helper thread while this one is rated
+    ahead = Prefetch(todo if workers <= 1 else [], job.load)
+    func = (lambda p: job(p, ahead(p))) if workers <= 1 else job
+    with ahead:
+        for out in run_batch(todo, func, workers=workers, label="Rating panels"):
+            if out.ok:
+                rows = out.result
+                bad = [r for r in rows if r["status"] != "ok"]
+                failed += bool(bad)
+                for r in bad:
+                    report_failure(f"{out.item} {r['position']}: {r['status']}")
+                sha = shas[str(out.item)] or file_sha256(out.item)  # hashed once, in the pre-scan
+                outputs = [r[k] for r in rows for k in ("overlay", "json") if isinstance(r.get(k), str)]
+                ledger.record(out.item, sha, digest, outputs, "ok" if not bad else "partial")
+                failed += not record_rows(db, "panels", out.item, sha, db_settings, profile_sha, {"panels": rows},
+                                          exposure_h=job.exposure_for(out.item))
+                for r in rows:
+                    if r["status"] == "ok":
+                        extra = f", creep {r['creep_mean_mm']:.2f} mm" if r["scribe_found"] else ""
+                        click.echo(f"{out.item} {r['position']} {r['panel_id']}: rust {r['rust_area_pct']:.2f} % "
+                                   f"(+/- {r['rust_area_pct_unc']:.2f}), D610 {r['rust_grade_written']}, "
+                                   f"{r['ri_degree']}{extra}")
+            else:
+                failed += 1
+                report_failure(out.error, out.trace)
+                rows = [_empty_row(str(out.item), out.error)]
+            by_image[str(out.item)] = rows
     ledger.flush()
     all_rows = [r for rows in by_image.values() for r in rows]
     write_csv(table_path, pd.DataFrame(all_rows, columns=PANEL_COLUMNS))
