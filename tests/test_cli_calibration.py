@@ -341,10 +341,21 @@ def test_commands_are_imported_when_asked_for():
 
     ctx = click.Context(cli)
     assert cli.list_commands(ctx) == sorted({attr for _, attr in COMMANDS})
+    from coupon.cli.main import SUMMARIES
+
+    # 'coupon --help' lists the commands from SUMMARIES without importing them: the same lines as theirs
+    listing = cli.get_help(ctx)
     for _, attr in COMMANDS:
-        assert cli.get_command(ctx, attr).name == attr
+        cmd = cli.get_command(ctx, attr)
+        assert cmd.name == attr
+        assert SUMMARIES[attr] == cmd.get_short_help_str(limit=1000), attr
+    assert cli.get_help(ctx) == listing  # with every command imported, the same help
+    assert all(f"  {attr} " in listing for _, attr in COMMANDS)
     code = ("import sys\nfrom coupon.cli.main import cli\ntry:\n    cli(['pits', '--help'], standalone_mode=False)\n"
             "except SystemExit:\n    pass\nprint(sorted(m for m in ('coupon.cli.panels', 'coupon.cli.droplet', "
             "'coupon.cli.report', 'matplotlib') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip().splitlines()[-1] == "[]"
+    code = code.replace("['pits', '--help']", "['--help']")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip().splitlines()[-1] == "[]" and "Commands:" in out
