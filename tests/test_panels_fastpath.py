@@ -342,3 +342,269 @@ def test_row_medians_match_numpy_median():
             np.testing.assert_array_equal(got, np.median(a, axis=1))
             a[2, n // 2] = np.nan
             np.testing.assert_array_equal(_median_rows(a), np.median(a, axis=1))
+
+
+# -- the second round of shortcuts (bucket selection, cropped labelling, caches, OpenCV morphology) --
+
+
+def _awkward_values(rng, n, dtype):
+    # negatives, both infinities, signed zeros, subnormals, ties and a wide range of magnitudes
+    big = 300 if dtype == np.float64 else 37
+    tiny = 1e-310 if dtype == np.float64 else 1e-40
+    v = np.concatenate([rng.normal(size=n) * 10.0 ** rng.integers(-big, big, n), np.round(rng.random(n), 2),
+                        [np.inf, -np.inf, 0.0, -0.0, tiny, -tiny]])
+    return rng.permutation(v).astype(dtype)
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_order_statistics_match_numpy_sort(dtype):
+    from coupon.segment.panels.rust import _order_stats
+
+    rng = np.random.default_rng(12)
+    for n in (1, 7, 1000, 30000):
+        v = _awkward_values(rng, n, dtype)
+        ranks = sorted({0, v.size // 2, v.size - 1, int(rng.integers(0, v.size))})
+        np.testing.assert_array_equal(_order_stats(v, ranks), np.sort(v)[ranks])
+    same = np.full(5000, 0.3, dtype)  # one bucket holds every value
+    np.testing.assert_array_equal(_order_stats(same, [2499, 2500]), same[:2])
+
+
+def test_bucket_row_medians_match_numpy_median():
+    from coupon.segment.panels.rust import _BUCKET_MIN, _median_rows
+
+    rng = np.random.default_rng(13)
+    for n in (_BUCKET_MIN, _BUCKET_MIN + 1, 20000, 20001):
+        for dtype in (np.float32, np.float64):
+            a = np.stack([_awkward_values(rng, n // 2, dtype)[:n] for _ in range(3)])
+            a[1] = np.abs(a[1])
+            np.testing.assert_array_equal(_median_rows(a), np.median(a, axis=1))
+            # float32 rows averaged in float64: the float64 medians of the same values
+            np.testing.assert_array_equal(_median_rows(a, np.float64), np.median(a.astype(np.float64), axis=1))
+            a[2, 5] = np.nan
+            np.testing.assert_array_equal(_median_rows(a), np.median(a, axis=1))
+
+
+def test_coating_colour_matches_float64_medians():
+    # the plain computation: float64 samples, np.median, the chromaticity filter twice
+    from coupon.segment.panels.rust import _sample_idx, coating_colour
+
+    for panel, valid in _tray_panels_cache():
+        lin = panel.linear
+        idx = _sample_idx(valid)
+        px = lin.reshape(-1, 3)[idx].astype(np.float64)
+        c = np.median(px, axis=0)
+        for _ in range(2):
+            d = np.abs(px / np.maximum(px.sum(axis=1, keepdims=True), 1e-6) - c / max(c.sum(), 1e-6)).sum(axis=1)
+            keep = d <= max(np.median(d) * 3, 0.01)
+            if keep.sum() > 50:
+                c = np.median(px[keep], axis=0)
+        ref = np.maximum(c, 1e-5)
+        np.testing.assert_allclose(coating_colour(lin, valid), ref, rtol=1e-14, atol=0)
+        np.testing.assert_array_equal(coating_colour(lin, valid, idx, lin.reshape(-1, 3)[idx]),
+                                      coating_colour(lin, valid))
+
+
+_TRAY_PANELS = []
+
+
+def _tray_panels_cache():
+    # two synthetic panels (light with pinpoint rust, grey with an X scribe) for the tests below
+    if not _TRAY_PANELS:
+        from coupon.segment.panels import base_mask
+        from coupon.segment.panels.detect import find_panels, rectify_panel
+        from coupon.synth.panels import PanelSpec, TraySettings, tray_scene
+
+        specs = [PanelSpec("white", ("pinpoint",)), PanelSpec("grey", ("general",), dirt=True, scribe="x", creep_mm=1.0)]
+        img, _ = tray_scene(specs, seed=41, settings=TraySettings(image_wh=(1600, 1200), cols=2))
+        for q in find_panels(img):
+            p = rectify_panel(img, q.corners_xy, (75, 150), 10.0)
+            _TRAY_PANELS.append((p, base_mask(p.linear.shape[:2], 10.0, 5.0)))
+    return _TRAY_PANELS
+
+
+@pytest.mark.parametrize("threads", [1, None])
+def test_cropped_labelling_matches_opencv_on_the_whole_picture(threads):
+    # OpenCV's labels of the whole picture, pixel for pixel (numbering included), from boxes that start
+    # at odd and even rows and columns
+    import cv2
+
+    from coupon.segment.panels.rust import _label_pixels
+
+    before = cv2.getNumThreads()
+    try:
+        if threads is not None:
+            cv2.setNumThreads(threads)
+        rng = np.random.default_rng(14)
+        for t in range(30):
+            shape = (int(rng.integers(20, 400)), int(rng.integers(20, 300)))
+            img = (ndi.uniform_filter(rng.random(shape), 5) > 0.55 + 0.01 * (t % 4)).astype(np.uint8)
+            img[: int(rng.integers(0, 7))] = 0
+            img[:, : int(rng.integers(0, 7))] = 0
+            if t % 3 == 0:
+                img[rng.random(shape) > 0.98] = 1  # single pixels
+            n_ref, lab_ref = cv2.connectedComponents(img, connectivity=8)
+            idx = np.flatnonzero(img)
+            n, lab = _label_pixels(idx, shape)
+            assert n == n_ref
+            np.testing.assert_array_equal(lab, lab_ref.ravel()[idx])
+        assert _label_pixels(np.zeros(0, np.int64), (10, 10))[0] == 1
+    finally:
+        cv2.setNumThreads(before)
+
+
+def test_cropped_halo_matches_the_whole_picture_dilation():
+    import cv2
+
+    from coupon.segment.panels.rust import _halo
+
+    rng = np.random.default_rng(15)
+    for t in range(20):
+        shape = (int(rng.integers(10, 300)), int(rng.integers(10, 300)))
+        lab_img = np.zeros(shape, np.uint16)
+        sidx = np.unique(rng.integers(0, lab_img.size, int(rng.integers(1, 200))))
+        if t % 2:
+            sidx = np.unique(np.r_[sidx, 0, lab_img.size - 1])  # touching the picture's corners
+        s_lab = rng.integers(1, 40, sidx.size)
+        lab_img.ravel()[sidx] = s_lab
+        rated = rng.random(shape) > 0.2
+        # the whole-picture computation it replaced
+        halo = cv2.dilate(lab_img, np.ones((3, 3), np.uint8))
+        hidx = np.flatnonzero(halo.ravel() != 0)
+        inner = lab_img.ravel()[hidx].astype(np.int32)
+        hl = np.where(inner > 0, inner, halo.ravel()[hidx].astype(np.int32))
+        inside = (inner > 0) | rated.ravel()[hidx]
+        got = _halo(sidx, lab_img.ravel()[sidx], 41, rated.ravel(), shape)
+        np.testing.assert_array_equal(got[0], hidx[inside])
+        np.testing.assert_array_equal(got[1], hl[inside])
+
+
+def test_site_caches_and_sparse_candidates_change_nothing():
+    # the caches shared by measure_rust's three threshold pairs and the grow candidates taken from the
+    # rust pixels give what fresh, whole-picture computations give
+    from coupon.segment.panels.rust import unmix
+
+    for panel, valid in _tray_panels_cache():
+        m = unmix(panel.linear, valid, 10.0)
+        assert m.rust_idx is not None
+        np.testing.assert_array_equal(m.rust_idx, np.flatnonzero(m.rust_wins))
+        plain = ColourModel(*[getattr(m, k) for k in ("coating_linear", "score", "fraction", "neutral_dev", "light",
+                                                      "rust_wins", "noise_fraction")])
+        for low in (1.0, 2.0, 4.0):
+            np.testing.assert_array_equal(_grow_candidates(m, valid, low), _grow_candidates(plain, valid, low))
+        cache: dict = {}
+        cand = _grow_candidates(plain, valid, 1.0)
+        for k in (1.0, 0.5, 2.0, 1.0):
+            a = _sites(m, valid, 10.0, 2.0 * k, 5.0 * k, 0.02, cand, cache=cache)
+            b = _sites(plain, valid, 10.0, 2.0 * k, 5.0 * k, 0.02)
+            np.testing.assert_array_equal(a[0], b[0])
+            np.testing.assert_array_equal(a[1], b[1])
+            np.testing.assert_array_equal(a[2], b[2])
+            assert a[3] == b[3]
+
+
+def test_defect_map_matches_the_whole_map_selection():
+    from coupon.segment.panels.rust import unmix
+    from coupon.segment.panels.scribe import defect_map
+
+    for panel, valid in _tray_panels_cache():
+        m = unmix(panel.linear, valid, 10.0)
+        metal = np.clip((np.abs(m.neutral_dev) - np.float32(0.25)) * np.float32(4.0), 0, 1)
+        metal[m.rust_wins] = 0
+        defect = np.where(m.rust_wins, np.clip(m.fraction, 0, 1), metal)
+        got = defect_map(m)
+        np.testing.assert_array_equal(got[0], defect)
+        np.testing.assert_array_equal(got[1], metal)
+
+
+def test_light_field_from_the_two_channel_stack():
+    # one two-channel INTER_AREA resize gives the block means of two single-channel resizes, and the
+    # strip-wise stack is (brightness x mask, mask)
+    import cv2
+
+    from coupon.segment.panels import rust as R
+
+    for panel, valid in _tray_panels_cache():
+        lin = panel.linear
+        w = np.array([0.5, 0.3, 0.2])
+        alpha = cv2.transform(lin, w.astype(np.float32)[None, :])
+        cleanf = valid.astype(np.float32)
+        stack = R._light_stack(lin, w, valid)
+        np.testing.assert_array_equal(stack[..., 0], alpha * cleanf)
+        np.testing.assert_array_equal(stack[..., 1], cleanf)
+        for size in [(38, 75), (37, 74), (150, 300)]:
+            both = cv2.resize(stack, size, interpolation=cv2.INTER_AREA)
+            np.testing.assert_array_equal(both[..., 0], cv2.resize(alpha * cleanf, size, interpolation=cv2.INTER_AREA))
+            np.testing.assert_array_equal(both[..., 1], cv2.resize(cleanf, size, interpolation=cv2.INTER_AREA))
+        np.testing.assert_array_equal(R._smooth_light(None, valid, 10.0, stack), R._smooth_light(alpha, valid, 10.0))
+
+
+def test_row_closing_matches_scipy():
+    from coupon.segment.panels.scribe import _close_rows
+
+    rng = np.random.default_rng(16)
+    for t in range(60):
+        a = rng.random((int(rng.integers(1, 40)), int(rng.integers(1, 600)))) > rng.uniform(0.2, 0.95)
+        for size in (1, 2, 3, 4, 11, 13):
+            np.testing.assert_array_equal(_close_rows(a, size), ndi.binary_closing(a, structure=np.ones((1, size))))
+
+
+def test_band_runs_match_a_walk_along_each_profile():
+    from coupon.segment.panels.scribe import _band_runs
+
+    def walk(closed, mid, win):  # the per-profile search it replaced (measure_scribe's loop)
+        seg = closed[mid - win:mid + win + 1]
+        if not seg.any():
+            return None
+        start = mid - win + int(np.flatnonzero(seg)[np.argmin(np.abs(np.flatnonzero(seg) - win))])
+        a, b = start, start
+        while a > 0 and closed[a - 1]:
+            a -= 1
+        while b < len(closed) - 1 and closed[b + 1]:
+            b += 1
+        return a, b
+
+    rng = np.random.default_rng(17)
+    for t in range(20):
+        closed = rng.random((50, 101)) > rng.uniform(0.1, 0.9)
+        closed[t % 50] = True  # a run over the whole profile
+        closed[(t + 7) % 50] = False
+        for win in (0, 3, 12, 50):
+            assert _band_runs(closed, 50, win) == [walk(c, 50, win) for c in closed]
+
+
+def test_station_maps_match_the_broadcast_sample_points():
+    from coupon.segment.panels.scribe import _station_maps
+
+    rng = np.random.default_rng(18)
+    centres = rng.uniform(0, 150, (40, 2))
+    u = np.array([0.6, 0.8])
+    nrm = np.array([-0.8, 0.6])
+    along, offs = np.linspace(-0.4, 0.4, 5), np.arange(-25, 25 + 1e-9, 0.1)
+    pts = (centres[:, None, None, :] + (along[:, None, None] * u)[None]) + (offs[None, :, None] * nrm)[None]
+    px = (pts * 10.0 - 0.5).astype(np.float32).reshape(-1, len(offs), 2)
+    mx, my = _station_maps(centres, along, offs, u, nrm, 10.0)
+    np.testing.assert_array_equal(mx, px[..., 0])
+    np.testing.assert_array_equal(my, px[..., 1])
+
+
+def test_projection_peak_search_matches_the_loop_over_angles():
+    # the exclusion of angles within 30 degrees of a found line, as one array test per line
+    thetas = np.deg2rad(np.arange(0.0, 180.0, 1.0))
+    rng = np.random.default_rng(19)
+    for t0 in np.r_[thetas[::7] + 0.1 * rng.integers(-15, 16, 26) * np.pi / 180, np.deg2rad([45.0, 15.0, 165.0])]:
+        loop = np.array([abs(np.angle(np.exp(2j * (th - t0)))) < np.deg2rad(30) for th in thetas])
+        np.testing.assert_array_equal(np.abs(np.angle(np.exp(2j * (thetas - t0)))) < np.deg2rad(30), loop)
+
+
+def test_overlay_png_is_lossless(tmp_path):
+    import cv2
+
+    from coupon.report.panel_figures import panel_overlay, write_panel_overlay
+
+    panel, valid = _tray_panels_cache()[0]
+    sites = np.zeros(valid.shape, bool)
+    sites[200:230, 300:340] = True
+    want = panel_overlay(panel.linear, 10.0, valid, sites, None, "R1C1")
+    dest = write_panel_overlay(tmp_path / "o.png", panel.linear, 10.0, valid, sites, None, "R1C1")
+    got = cv2.cvtColor(cv2.imread(str(dest), cv2.IMREAD_COLOR), cv2.COLOR_BGR2RGB)
+    np.testing.assert_array_equal(got, want)
