@@ -549,19 +549,10 @@ def test_row_closing_matches_scipy():
 
 
 def test_band_runs_match_a_walk_along_each_profile():
+    # reference: the per-profile search the array version replaced (measure_scribe's loop), kept in
+    # scribe.py for searches shorter than the window
+    from coupon.segment.panels.scribe import _band_run_walk as walk
     from coupon.segment.panels.scribe import _band_runs
-
-    def walk(closed, mid, win):  # the per-profile search it replaced (measure_scribe's loop)
-        seg = closed[mid - win:mid + win + 1]
-        if not seg.any():
-            return None
-        start = mid - win + int(np.flatnonzero(seg)[np.argmin(np.abs(np.flatnonzero(seg) - win))])
-        a, b = start, start
-        while a > 0 and closed[a - 1]:
-            a -= 1
-        while b < len(closed) - 1 and closed[b + 1]:
-            b += 1
-        return a, b
 
     rng = np.random.default_rng(17)
     for t in range(20):
