@@ -1,6 +1,7 @@
 """The strip-by-strip passes of the pit analysis (and its reused scratch arrays) against full-frame references.
 
-The pit analysis never makes a full-frame float array of a scan: the enlarged
+The pit analysis never makes a full-frame float array of a scan, nor a full-frame label map (its objects are
+labelled from the runs of its pixel lists, ``label_runs``): the enlarged
 signed distance, the background and the smoothed grey level exist one strip of
 rows at a time (``RowUpsampler``, ``candidate_pixels``).  Each is checked here
 against the full-frame computation it replaces, made with the reference
@@ -13,6 +14,8 @@ from __future__ import annotations
 import cv2
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from skimage.morphology import h_maxima
 
 from coupon.io.images import float01
@@ -269,6 +272,65 @@ def test_pit_labels_block_centres_equal_slicing_the_map(shape):
         assert np.array_equal(labels.block_centres(k), full[k // 2::k, k // 2::k][:hb, :wb])
     empty = PitLabels(shape, np.zeros(0, np.int64), np.zeros(0, np.int32))
     assert not empty.block_centres(3).any()
+
+
+@pytest.mark.parametrize("shape", [(400, 600), (401, 599), (37, 1000), (5, 7)])
+def test_pit_labels_sampled_equals_slicing_the_map(shape):
+    """Any regular sample of the pixel list (the reference surface's grid) equals slicing the full map (numpy)."""
+    from coupon.segment.pits import PitLabels
+
+    rng = np.random.default_rng(shape[1])
+    full = ((rng.random(shape) < 0.3) * rng.integers(1, 50, shape)).astype(np.int32)
+    idx = np.flatnonzero(full)
+    labels = PitLabels(shape, idx, full.ravel()[idx])
+    for k in (1, 2, 3, 5, 20):
+        for offset in {0, k // 2, k - 1}:
+            assert np.array_equal(labels.sampled(k, offset), full[offset::k, offset::k])
+
+
+def _check_label_runs(mask: np.ndarray) -> None:
+    """label_runs on the mask's pixel list: the same objects as OpenCV's and scipy's 8-connected labelling,
+    numbered by their first 2 x 2 block in reading order."""
+    from scipy import ndimage as ndi
+
+    from coupon.segment.pits import label_runs, pixel_runs
+
+    h, w = mask.shape
+    idx = np.flatnonzero(mask)
+    runs = pixel_runs(idx, w)
+    n, run_lab = label_runs(runs, w)
+    ours = np.zeros(mask.shape, np.int32)
+    ours.ravel()[idx] = np.repeat(run_lab, runs.length)
+    n_cv, lab_cv = cv2.connectedComponents(mask.astype(np.uint8), connectivity=8, ltype=cv2.CV_32S)
+    lab_sp, n_sp = ndi.label(mask, structure=np.ones((3, 3)))
+    assert n == n_cv - 1 == n_sp
+    for ref in (lab_cv, lab_sp):  # the same partition: a one-to-one map between the labels
+        pairs = np.unique(np.stack([ours[mask], ref[mask]]), axis=1)
+        assert pairs.shape[1] == n
+    if n:
+        # numbering: by the first 2 x 2 block (block row, block column) each object touches
+        rr, cc = np.nonzero(mask)
+        first = np.full(n + 1, np.iinfo(np.int64).max)
+        np.minimum.at(first, ours[rr, cc], (rr // 2) * (w + 2) + cc // 2)
+        assert np.all(np.diff(first[1:]) > 0)
+
+
+@pytest.mark.parametrize("seed,shape,p", [(0, (300, 411), 0.35), (1, (64, 64), 0.6), (2, (1, 500), 0.5),
+                                          (3, (500, 1), 0.5), (4, (257, 129), 0.1), (5, (40, 40), 0.0)])
+def test_label_runs_equals_opencv_and_scipy(seed, shape, p):
+    rng = np.random.default_rng(seed)
+    mask = rng.random(shape) < p
+    _check_label_runs(mask)
+    # blobs with holes and diagonal contacts (a dilated sparse mask, thinned again)
+    blobs = cv2.dilate(mask.astype(np.uint8), np.ones((3, 3), np.uint8)).astype(bool) & (rng.random(shape) < 0.8)
+    _check_label_runs(blobs)
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.integers(1, 40), st.integers(1, 40), st.floats(0.0, 0.9), st.integers(0, 2**31 - 1))
+def test_label_runs_property(h, w, p, seed):
+    """Any mask (hypothesis): the run labelling agrees with OpenCV's and scipy's."""
+    _check_label_runs(np.random.default_rng(seed).random((h, w)) < p)
 
 
 def test_opencv_distance_transform_is_repeatable_after_importing_coupon():
