@@ -42,6 +42,8 @@ import cv2
 import numpy as np
 import pandas as pd
 from scipy import ndimage as ndi
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
 from skimage.filters import threshold_otsu
 from skimage.morphology import h_maxima
 from skimage.segmentation import watershed
@@ -662,17 +664,24 @@ def region_perimeter_px(mask: np.ndarray) -> float:
 
 # -- 3. flattening ---------------------------------------------------------------
 
-def background_map(grey: np.ndarray, region: np.ndarray, window_px: float) -> np.ndarray:
+def background_factor(window_px: float) -> int:
+    """The reduction factor of :func:`background_map` for a window of ``window_px``."""
+    return max(1, int(window_px // 31))
+
+
+def background_map(grey: np.ndarray, region: np.ndarray, window_px: float,
+                   reduced: np.ndarray | None = None) -> np.ndarray:
     """Large-scale surface level on a reduced grid: a median over ``window_px``, blind to objects
     smaller than half of it (float32 in [0, 1], never below 1e-3).
 
     Computed on a copy reduced by an integer factor so the window is 31 to 61
     pixels (the odd size nearest to ``window_px`` over the factor); outside the
     region the nearest inside value is copied so the background does not leak in.
-    :class:`RowUpsampler` (or :func:`background_level`) brings it to full size.
+    :class:`RowUpsampler` (or :func:`background_level`) brings it to full size.  ``reduced``: the
+    grey level already reduced by :func:`background_factor` (made while the region was found).
     """
-    factor = max(1, int(window_px // 31))
-    g = float01(_reduce(grey, factor))
+    factor = background_factor(window_px)
+    g = float01(_reduce(grey, factor) if reduced is None else reduced)
     cover = _reduce(region.view(np.uint8), factor)  # 0/1 averaged: 1 means fully inside
     inside = cover >= 1
     if not inside.any():
@@ -1155,7 +1164,8 @@ def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, se
         "dropped_small": too_small, "split_added": int(split_made), "dropped_cut_by_border": int(outside.size),
         "min_pit_px": float(min_px),
     }
-    return PitLabels((h, w), kidx[on], kl[on]), details, (kidx[on], kl[on]), sums
+    pix, lab = kidx[on], kl[on]
+    return PitLabels((h, w), pix, lab), details, (pix, lab), sums
 
 
 # -- 5. measurement --------------------------------------------------------------
@@ -1341,9 +1351,6 @@ def label_runs(runs: Runs, ncols: int) -> tuple[int, np.ndarray]:
     n = runs.start.size
     if n == 0:
         return 0, np.zeros(0, np.int32)
-    from scipy.sparse import coo_matrix
-    from scipy.sparse.csgraph import connected_components
-
     # run keys on one line, rows ncols + 3 apart: a span widened by one column never reaches the next row
     wp = ncols + 3
     first = runs.row * wp + runs.col0
@@ -1522,7 +1529,16 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
             rgb, height_mm, rectified = rect
             grey = grey_pixels(rgb, _scratch("pit_grey", rgb.shape[:2], np.float32))
             sample = exposure_sample(rgb, grey)
-    region = find_region(grey, settings.edge_mm * s, settings.whole_frame)
+    window = settings.flatten_mm * s
+    # the background's reduced grey level needs no region: made on a second thread while the region is found
+    pool = ThreadPoolExecutor(max_workers=1) if _threads() > 1 else None
+    reduced = pool.submit(_reduce, grey, background_factor(window)) if pool is not None else None
+    try:
+        region = find_region(grey, settings.edge_mm * s, settings.whole_frame)
+        reduced = reduced.result() if reduced is not None else None
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True)
     coupon, analysed = region.coupon, region.analysed
     area_px = int(np.count_nonzero(analysed))
     if area_px < 100:
@@ -1536,7 +1552,7 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
     if on_region is not None:
         on_region(rgb, analysed)
     # a quarter of a million points estimate the noise (robust sigma: its standard error is about 0.2 %)
-    cands = candidate_pixels(grey, background_map(grey, coupon, settings.flatten_mm * s), coupon, analysed,
+    cands = candidate_pixels(grey, background_map(grey, coupon, window, reduced), coupon, analysed,
                              settings.look, settings.min_contrast)
     del grey
     work, details, pixels, sums = segment_pits(cands, coupon, analysed, settings)
