@@ -225,3 +225,43 @@ def test_colour_jpeg_decoded_straight_to_rgb_equals_opencv_bgr_decode(tmp_path):
     img = load_image(path)
     assert img.rgb_u8.dtype == np.uint8 and np.array_equal(img.rgb_u8, ref)
     assert img.notes == ()
+
+
+@pytest.mark.parametrize("orientation", [1, 3, 6, 8])
+def test_reduced_jpeg_decode_is_an_area_reduction_of_the_full_decode(tmp_path, orientation):
+    """decode_reduced (the JPEG decoder's scaled inverse DCT) against OpenCV's area reduction of the full
+    decode (reference: cv2.resize INTER_AREA), EXIF orientation applied alike."""
+    from coupon.io.images import decode_reduced
+
+    rng = np.random.default_rng(orientation)
+    smooth = cv2.GaussianBlur(rng.random((604, 900, 3)).astype(np.float32), (0, 0), 6)
+    base = _u8((smooth - smooth.min()) / (smooth.max() - smooth.min()))
+    base[100:220, 300:420] = (200, 60, 30)  # a sharp-edged block
+    path = tmp_path / "r.jpg"
+    _jpeg_with_exif(path, base, orientation)
+    full = load_image(path).rgb_u8
+    # 604 x 900: 8 divides neither side, so a turned picture is reduced by 4 at most
+    for min_side, factor in ((100, 8 if orientation == 1 else 4), (200, 4), (400, 2)):
+        small, k, shape = decode_reduced(path, min_side)
+        assert k == factor and shape == full.shape[:2]
+        assert small.shape[:2] == (-(-full.shape[0] // k), -(-full.shape[1] // k))
+        # on the whole k x k blocks (a last partial block is the decoder's padding)
+        hb, wb = full.shape[0] // k, full.shape[1] // k
+        ref = cv2.resize(full[:hb * k, :wb * k], (wb, hb), interpolation=cv2.INTER_AREA)
+        diff = np.abs(small[:hb, :wb].astype(int) - ref.astype(int))
+        assert diff.mean() < 1.5 and np.percentile(diff, 99) <= 12
+
+
+def test_reduced_decode_declines_what_it_cannot_shorten(tmp_path):
+    """None (the caller decodes in full) for a PNG, a picture too small to reduce, a broken file."""
+    from coupon.io.images import decode_reduced
+
+    arr = np.full((300, 400, 3), 128, np.uint8)
+    cv2.imwrite(str(tmp_path / "a.png"), arr)
+    cv2.imwrite(str(tmp_path / "b.jpg"), arr)
+    (tmp_path / "c.jpg").write_bytes(b"not a jpeg")
+    assert decode_reduced(tmp_path / "a.png", 100) is None
+    assert decode_reduced(tmp_path / "b.jpg", 250) is None  # 400 px long: halved it would be under 250
+    assert decode_reduced(tmp_path / "b.jpg", 200)[1] == 2
+    assert decode_reduced(tmp_path / "c.jpg", 10) is None
+    assert decode_reduced(tmp_path / "missing.jpg", 10) is None
