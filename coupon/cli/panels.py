@@ -157,19 +157,18 @@ def panel_threads() -> int:
 
 def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out_dir: Path,
                layout: dict | None = None, exposure_h: float | None = None,
-               max_pixels: int = DEFAULT_MAX_PIXELS, img: LoadedImage | None = None,
-               coarse: list | None = None) -> list[dict]:
+               max_pixels: int = DEFAULT_MAX_PIXELS, img: LoadedImage | None = None) -> list[dict]:
     """Rate every panel in one tray photo; write its overlays and JSON files; return the CSV rows.
 
     The panels are rated on :func:`panel_threads` threads; the rows come back in tray order.
-    ``img``: the photo already loaded (by a :class:`~coupon.io.batch.Prefetch`), or None to load it here;
-    ``coarse``: the coarse panel search of that photo made with it (:func:`load_with_coarse_search`), or None.
+    ``img``: the photo already loaded (by a :class:`~coupon.io.batch.Prefetch`), or None to load it here.
 
     Raises
     ------
     ImageLoadError, AnalysisError
         The image cannot be read, or no panel is found in it.
     """
+    coarse = None
     if img is None:
         img, coarse = load_with_coarse_search(path, max_pixels)
     warm_opencv()  # the Lab tables find_panels needs: built by now on the command's helper thread, or here
@@ -326,14 +325,12 @@ class PanelsJob:
             return self.hours
         return hours_from_name(path)
 
-    def __call__(self, path: Path, loaded: tuple[LoadedImage, list | None] | None = None) -> list[dict]:
-        img, coarse = loaded if loaded is not None else (None, None)
+    def __call__(self, path: Path, img: LoadedImage | None = None) -> list[dict]:
         return rate_image(path, self.settings, self.profile, self.out_dir, self.layout, self.exposure_for(path),
-                          self.max_pixels, img, coarse)
+                          self.max_pixels, img)
 
-    def load(self, path: Path) -> tuple[LoadedImage, list | None]:
-        """The photo and its coarse panel search (:func:`load_with_coarse_search`), for a Prefetch."""
-        return load_with_coarse_search(path, self.max_pixels)
+    def load(self, path: Path) -> LoadedImage:
+        return load_image(path, max_pixels=self.max_pixels)
 
 
 EXAMPLE = """
