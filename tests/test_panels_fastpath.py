@@ -599,33 +599,3 @@ def test_overlay_png_is_lossless(tmp_path):
     dest = write_panel_overlay(tmp_path / "o.png", panel.linear, 10.0, valid, sites, None, "R1C1")
     got = cv2.cvtColor(cv2.imread(str(dest), cv2.IMREAD_COLOR), cv2.COLOR_BGR2RGB)
     np.testing.assert_array_equal(got, want)
-
-
-def test_coarse_search_beside_the_decode_finds_the_panels_of_the_full_search(tmp_path):
-    """The panel command's coarse search on the JPEG decoder's reduced decode, run while the full decode
-    runs, gives the panels of the search on an area reduction of the full picture (cv2.resize): corners
-    within 0.25 px after the full-resolution refinement (it samples its edge profiles where the coarse
-    corners put them, so the two agree to a fraction of a pixel, not exactly); a PNG falls back to the
-    full search."""
-    import cv2
-
-    from coupon.cli.panels import load_with_coarse_search
-    from coupon.io.images import load_image, to_uint8
-    from coupon.segment.panels.detect import find_panels
-    from coupon.synth.panels import PanelSpec, TraySettings, tray_scene
-
-    specs = [PanelSpec("white", ("spots",)), PanelSpec("grey", ("general",)), PanelSpec("dark", ("pinpoint",))]
-    img, truth = tray_scene(specs, seed=8, settings=TraySettings(image_wh=(2400, 1800), cols=3, tilt_x_deg=6))
-    bgr = cv2.cvtColor(to_uint8(img), cv2.COLOR_RGB2BGR)
-    cv2.imwrite(str(tmp_path / "t.jpg"), bgr, [cv2.IMWRITE_JPEG_QUALITY, 92])
-    cv2.imwrite(str(tmp_path / "t.png"), bgr)
-    loaded, coarse = load_with_coarse_search(tmp_path / "t.jpg")
-    if cv2.getNumThreads() > 1:
-        assert coarse is not None and len(coarse) == len(specs)
-    ref = find_panels(load_image(tmp_path / "t.jpg").rgb_u8)
-    got = find_panels(loaded.rgb_u8, coarse=coarse)
-    assert [q.position for q in got] == [q.position for q in ref] and len(got) == len(specs)
-    for a, b in zip(got, ref):
-        assert a.touches == b.touches
-        assert np.abs(a.corners_xy - b.corners_xy).max() < 0.25
-    assert load_with_coarse_search(tmp_path / "t.png")[1] is None

@@ -8,7 +8,6 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import click
-import cv2
 import numpy as np
 import pandas as pd
 
@@ -32,7 +31,6 @@ from coupon.io.batch import Prefetch, ResumeLedger, run_batch, settings_hash
 from coupon.io.images import (
     DEFAULT_MAX_PIXELS,
     LoadedImage,
-    decode_reduced,
     expand_image_paths,
     file_sha256,
     load_image,
@@ -44,8 +42,6 @@ from coupon.report.panel_figures import write_panel_overlay
 from coupon.segment.panels import PanelSettings, rate_panel
 from coupon.segment.panels.detect import (
     check_panel_size,
-    coarse_panels,
-    coarse_size,
     find_panels,
     read_qr_codes,
     rectify_panel,
@@ -152,6 +148,8 @@ def panel_threads() -> int:
     2-core benchmark machine two threads take 0.8 of the time of one (the rest holds the GIL: small
     numpy calls, the JSON encoder).
     """
+    import cv2
+
     return max(1, min(PANEL_THREADS_MAX, cv2.getNumThreads()))
 
 
@@ -168,13 +166,12 @@ def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out
     ImageLoadError, AnalysisError
         The image cannot be read, or no panel is found in it.
     """
-    coarse = None
     if img is None:
-        img, coarse = load_with_coarse_search(path, max_pixels)
+        img = load_image(path, max_pixels=max_pixels)
     warm_opencv()  # the Lab tables find_panels needs: built by now on the command's helper thread, or here
     # an 8-bit photo is worked from its decoded pixels: no float copy of the whole tray (144 MB at 12 MP)
     pixels = img.rgb_u8 if img.rgb_u8 is not None else img.rgb
-    quads = find_panels(pixels, coarse=coarse)
+    quads = find_panels(pixels)
     if not quads:
         raise AnalysisError("no panel found: nothing stands out from the tray; check that the panels are in "
                             "the frame and differ in colour from the tray", path)
@@ -194,49 +191,6 @@ def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out
 
     with ThreadPoolExecutor(max_workers=threads, thread_name_prefix="coupon-panels") as pool:
         return list(pool.map(one, range(len(quads))))
-
-
-def load_with_coarse_search(path: Path, max_pixels: int = DEFAULT_MAX_PIXELS) -> tuple[LoadedImage, list | None]:
-    """Load a tray photo and, on a second thread while it decodes, search it for panels coarsely.
-
-    The coarse search (:func:`~coupon.segment.panels.detect.coarse_panels`) works on a copy about
-    1000 px long; for a JPEG the decoder's own scaled decode (:func:`~coupon.io.images.decode_reduced`)
-    gives that copy at a fraction of the full decode's cost, so the search runs beside the full decode
-    instead of after it (about 0.1 s of the 12 MP benchmark tray's time).  Returns the image and the
-    coarse result, or None for it (not a JPEG, one core, anything amiss): :func:`find_panels` then
-    searches the full picture as before.  The full load's errors are raised as they are.
-    """
-    if panel_threads() <= 1:
-        return load_image(path, max_pixels=max_pixels), None
-    from concurrent.futures import ThreadPoolExecutor
-
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="coupon-coarse") as pool:
-        search = pool.submit(_coarse_from_file, path, max_pixels)
-        try:
-            img = load_image(path, max_pixels=max_pixels)
-        except BaseException:
-            search.cancel()
-            raise
-        found = search.result()
-    if found is None or found[0] != tuple(img.shape_rc):
-        return img, None  # a different picture from the one decoded (cannot happen for a JPEG read once)
-    return img, found[1]
-
-
-def _coarse_from_file(path: Path, max_pixels: int):
-    """(full picture's rows and columns, coarse_panels) from a reduced decode of the file, or None."""
-    try:
-        warm_opencv()  # the Lab tables of the coarse search (a lock: one thread builds them)
-        red = decode_reduced(path, 1000, max_pixels)
-        if red is None:
-            return None
-        small, _, full = red
-        f, size = coarse_size(full)
-        if (small.shape[1], small.shape[0]) != size:
-            small = cv2.resize(small, size, interpolation=cv2.INTER_AREA)
-        return full, coarse_panels(small, f)
-    except Exception:  # noqa: BLE001 - a failed shortcut falls back to the full search
-        return None
 
 
 def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings: PanelSettings,
@@ -267,6 +221,8 @@ def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings:
     boxes = []
     if qr_hit is not None:
         # the QR label is not coating: leave its box (plus 2 mm) out of the rating
+        import cv2
+
         mm = cv2.perspectiveTransform(qr_hit[1].reshape(-1, 1, 2), panel.scale.homography).reshape(-1, 2)
         lo, hi = mm.min(axis=0) - 2, mm.max(axis=0) + 2
         if np.all(hi > 0) and np.all(lo < panel.size_mm):

@@ -345,49 +345,6 @@ def load_image(path: str | os.PathLike, max_pixels: int = DEFAULT_MAX_PIXELS) ->
     )
 
 
-#: libjpeg's scaled decodes (the inverse DCT at 1/2, 1/4 or 1/8 of the size): factor -> OpenCV flag.
-_REDUCED_JPEG = {8: cv2.IMREAD_REDUCED_COLOR_8, 4: cv2.IMREAD_REDUCED_COLOR_4, 2: cv2.IMREAD_REDUCED_COLOR_2}
-
-
-def decode_reduced(path: str | os.PathLike, min_side_px: int, max_pixels: int = DEFAULT_MAX_PIXELS
-                   ) -> tuple[np.ndarray, int, tuple[int, int]] | None:
-    """An 8-bit colour JPEG decoded at 1/2, 1/4 or 1/8 of its size, for a quick look at the whole frame.
-
-    The decoder's scaled inverse DCT skips most of a full decode's work (on the 12 MP benchmark tray
-    about half its time at 1/4), and each reduced pixel is close to the mean of its block of the full
-    picture, pixel centres aligned, as an area reduction gives.  The largest factor whose long side
-    stays at least ``min_side_px`` is used (for a picture turned by its EXIF orientation, one that
-    divides both sides).  Returns (RGB uint8 with the EXIF orientation applied, factor,
-    (rows, columns) of the full picture, oriented), or None when the file is not an 8-bit colour JPEG,
-    is not more than twice ``min_side_px`` long, or cannot be read: the full :func:`load_image`
-    reports the problem.
-    """
-    path = Path(path)
-    try:
-        data = _read_bytes(path)
-        orientation, _, rgb_jpeg = _header(data, path, max_pixels)
-        if not rgb_jpeg:
-            return None
-        with Image.open(io.BytesIO(data)) as im:
-            width, height = im.size
-    except (ImageLoadError, OSError, ValueError):
-        return None
-    # a partial last block of pixels lies at the bottom and right of the stored picture; turned by its
-    # EXIF orientation it could come first, and the reduced pixels would no longer sit on whole blocks
-    # of the oriented picture: then only a factor that divides both sides will do
-    whole = orientation == 1
-    factor = next((k for k in _REDUCED_JPEG if max(width, height) / k >= min_side_px
-                   and (whole or (width % k == 0 and height % k == 0))), None)
-    if factor is None:
-        return None
-    small = cv2.imdecode(np.frombuffer(data, np.uint8), _REDUCED_JPEG[factor] | cv2.IMREAD_IGNORE_ORIENTATION)
-    if small is None or small.ndim != 3 or small.shape[:2] != (-(-height // factor), -(-width // factor)):
-        return None
-    small = _apply_orientation(cv2.cvtColor(small, cv2.COLOR_BGR2RGB), orientation)
-    full = (width, height) if orientation in (5, 6, 7, 8) else (height, width)
-    return small, factor, full
-
-
 def file_sha256(path: str | os.PathLike) -> str:
     """SHA-256 of a file's bytes, read in blocks.
 

@@ -304,31 +304,7 @@ def assign_positions(quads: list[PanelQuad]) -> list[PanelQuad]:
     return sorted(out, key=lambda q: q.position)
 
 
-def coarse_size(shape_rc: tuple[int, int], max_side_px: int = 1000) -> tuple[float, tuple[int, int]]:
-    """Scale and (width, height) of the reduced copy the coarse panel search works on."""
-    rows, cols = shape_rc
-    f = min(1.0, max_side_px / max(rows, cols))
-    return f, (max(1, int(round(cols * f))), max(1, int(round(rows * f))))
-
-
-def coarse_panels(small: np.ndarray, f: float, min_area_frac: float = 0.004
-                  ) -> list[tuple[np.ndarray, str | None, float]]:
-    """The coarse panel search on a reduced copy of the photo (sRGB, uint8 or float in [0, 1]).
-
-    ``f``: the copy's scale (reduced px per photo px; pixel centres aligned, as ``cv2.resize``
-    and a JPEG decoder's scaled decode both give).  Returns, per region that stands out from the
-    tray, its quadrilateral in photo pixels, the frame edge it touches (or None) and its fill ratio.
-    """
-    lab = cv2.cvtColor(np.ascontiguousarray(float01(small), dtype=np.float32), cv2.COLOR_RGB2Lab)
-    dist = _tray_distance(lab)
-    thr = max(10.0, _otsu(dist))
-    mask = clean_mask(dist > thr)
-    return [((quad_small + 0.5) / f - 0.5, touches, fill)
-            for quad_small, touches, fill in _coarse_quads(mask, min_area_frac * mask.size)]
-
-
-def find_panels(rgb: np.ndarray, max_side_px: int = 1000, min_area_frac: float = 0.004,
-                coarse: list | None = None) -> list[PanelQuad]:
+def find_panels(rgb: np.ndarray, max_side_px: int = 1000, min_area_frac: float = 0.004) -> list[PanelQuad]:
     """Find every panel in a tray photo.
 
     Parameters
@@ -339,22 +315,25 @@ def find_panels(rgb: np.ndarray, max_side_px: int = 1000, min_area_frac: float =
         Working size of the coarse search.
     min_area_frac : float
         Smallest region, as a fraction of the frame, that can be a panel.
-    coarse : list, optional
-        :func:`coarse_panels` of this photo made already (from a reduced decode of its file, while
-        the full decode ran); None to reduce the photo and search here.
 
     Returns
     -------
     list of PanelQuad
         In tray order (row by row from the top left); empty when nothing stands
-        out from the tray.  Corners are refined on the full photo.
+        out from the tray.
     """
-    f, size = coarse_size(rgb.shape[:2], max_side_px)
-    if coarse is None:
-        small = cv2.resize(rgb, size, interpolation=cv2.INTER_AREA) if f < 1 else rgb
-        coarse = coarse_panels(small, f, min_area_frac)
+    rows, cols = rgb.shape[:2]
+    f = min(1.0, max_side_px / max(rows, cols))
+    small = cv2.resize(rgb, (max(1, int(round(cols * f))), max(1, int(round(rows * f)))),
+                       interpolation=cv2.INTER_AREA) if f < 1 else rgb
+    lab = cv2.cvtColor(np.ascontiguousarray(float01(small), dtype=np.float32), cv2.COLOR_RGB2Lab)
+    dist = _tray_distance(lab)
+    thr = max(10.0, _otsu(dist))
+    mask = clean_mask(dist > thr)
+    found = _coarse_quads(mask, min_area_frac * mask.size)
     quads = []
-    for quad, touches, fill in coarse:
+    for quad_small, touches, fill in found:
+        quad = (quad_small + 0.5) / f - 0.5
         if touches is None:
             quad = _refine_quad(rgb, quad, reach_px=max(4.0, 2.5 / f))
         quads.append(PanelQuad(quad, touches, fill))
