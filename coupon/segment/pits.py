@@ -1152,9 +1152,9 @@ def segment_pits(cands: Candidates, coupon: np.ndarray, analysed: np.ndarray, se
     lut = np.concatenate([lut, np.arange(n1, next_id, dtype=np.int32)])
     lut[sums[0] < min_px] = 0
     # objects that reach outside the analysed region are cut by its border
-    cut = np.zeros(lut.size, bool)
-    cut[kl[~analysed.ravel()[kidx]]] = True
-    outside = np.flatnonzero(cut & (lut > 0))
+    reaches_out = np.zeros(lut.size, bool)
+    reaches_out[kl[~analysed.ravel()[kidx]]] = True
+    outside = np.flatnonzero(reaches_out & (lut > 0))
     lut[outside] = 0
     sums[:, lut == 0] = 0.0
     kl = lut[kl]
