@@ -17,5 +17,6 @@ import cv2 as _cv2
 # from one call to the next on the same input, depending on buffer alignment (the precise distance
 # transform did, OpenCV issue 24082: a touching pair of pits then split one way or the other between
 # runs).  Without IPP the same calls are exact and repeatable, and on the benchmarks no slower.
-# This setting is process-wide: it also applies to other OpenCV work in a program that imports coupon.
+# OpenCV keeps this switch per thread: it holds for the thread that imports coupon, and every thread pool of
+# the package switches it off in its threads too (coupon.io.threads); another program's own threads keep IPP.
 _cv2.ipp.setUseIPP(False)

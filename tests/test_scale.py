@@ -7,7 +7,13 @@ import numpy as np
 import pytest
 
 from coupon.calibrate.scale import (
-    quad_area_px2, scale_from_checkerboard, scale_from_points, scale_from_rectangle, scale_given, warp_to_mm_grid,
+    quad_area_px2,
+    scale_from_checkerboard,
+    scale_from_points,
+    scale_from_rectangle,
+    scale_given,
+    warp_perspective,
+    warp_to_mm_grid,
 )
 from coupon.errors import CalibrationError
 from coupon.synth.target import target_scene
@@ -89,6 +95,42 @@ def test_warp_to_mm_grid_puts_points_where_they_belong():
     patch = rect[r - 6:r + 6, c - 6:c + 6].mean(axis=2)
     quads = [patch[:6, :6].mean(), patch[:6, 6:].mean(), patch[6:, :6].mean(), patch[6:, 6:].mean()]
     assert max(quads) - min(quads) > 0.5  # two dark and two light quadrants meet there
+
+
+def test_warp_is_bilinear_and_the_same_on_any_number_of_threads():
+    # reference: scipy.ndimage.map_coordinates (order 1, bilinear) at the exact source position of
+    # every output pixel.  OpenCV's own warp rounds positions to 1/32 px, so on a smooth picture the
+    # two agree to a small fraction of the picture's steepest step per pixel
+    from concurrent.futures import ThreadPoolExecutor
+
+    from scipy import ndimage as ndi
+
+    rng = np.random.default_rng(3)
+    src = cv2.GaussianBlur(rng.random((400, 300, 3)).astype(np.float32), (0, 0), 3.0)
+    m = np.array([[1.05, 0.04, -6.0], [-0.03, 0.97, 9.0], [4e-5, -3e-5, 1.0]])
+    out = warp_perspective(src, m, (260, 360))
+    v, u = np.mgrid[20:340, 20:240].astype(np.float64)
+    p = np.linalg.inv(m) @ np.stack([u.ravel(), v.ravel(), np.ones(u.size)])
+    x, y = p[0] / p[2], p[1] / p[2]
+    step = max(np.abs(np.diff(src, axis=a)).max() for a in (0, 1))
+    for k in range(3):
+        ref = ndi.map_coordinates(src[..., k].astype(np.float64), [y, x], order=1).reshape(u.shape)
+        np.testing.assert_allclose(out[20:340, 20:240, k], ref, atol=step / 16)
+    # bit for bit on one OpenCV thread, on its default threads and from two Python threads at once
+    # (OpenCV 5.1's IPP path changed the last bit with the split over threads); the per-thread IPP
+    # switch is left as it was found
+    ipp = cv2.ipp.useIPP()
+    threads = cv2.getNumThreads()
+    try:
+        cv2.setNumThreads(1)
+        one = warp_perspective(src, m, (260, 360))
+    finally:
+        cv2.setNumThreads(threads)
+    with ThreadPoolExecutor(2) as pool:
+        side_by_side = list(pool.map(lambda _: warp_perspective(src, m, (260, 360)), range(4)))
+    for other in (one, *side_by_side):
+        np.testing.assert_array_equal(other, out)
+    assert cv2.ipp.useIPP() == ipp
 
 
 def test_given_scale_validated():

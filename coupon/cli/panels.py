@@ -37,6 +37,7 @@ from coupon.io.images import (
     try_sha256,
 )
 from coupon.io.tables import read_previous
+from coupon.io.threads import thread_pool
 from coupon.io.warmup import warm_in_background, warm_opencv
 from coupon.report.panel_figures import write_panel_overlay
 from coupon.segment.panels import PanelSettings, rate_panel
@@ -187,9 +188,7 @@ def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out
     threads = min(panel_threads(), len(quads))
     if threads <= 1:
         return [one(i) for i in range(len(quads))]
-    from concurrent.futures import ThreadPoolExecutor
-
-    with ThreadPoolExecutor(max_workers=threads, thread_name_prefix="coupon-panels") as pool:
+    with thread_pool(threads, "coupon-panels") as pool:
         return list(pool.map(one, range(len(quads))))
 
 

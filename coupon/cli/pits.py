@@ -29,6 +29,7 @@ from coupon.io.batch import Prefetch, ResumeLedger, run_batch, settings_hash
 from coupon.io.heightmap import HEIGHT_UNITS, check_height_shape, read_height_map_mm
 from coupon.io.images import LoadedImage, expand_image_paths, file_sha256, load_image, try_sha256
 from coupon.io.tables import read_previous
+from coupon.io.threads import thread_pool
 from coupon.ratings import mass_loss as ml
 from coupon.ratings.pitting import MassLoss, summarise_pits
 from coupon.report.pit_figures import (
@@ -108,7 +109,7 @@ def pit_rows_for_image(path: Path, job: PitJob, img: LoadedImage | None = None) 
     known = dict(job.height_sha256).get(str(hpath)) if hpath is not None else None
     # one helper thread on the second core (OpenCV's decoders, numpy and hashlib release the GIL), in turn:
     # the height map is read and converted to mm while the image decodes, then hashed while it is analysed
-    helpers = ThreadPoolExecutor(max_workers=1)
+    helpers = thread_pool(1, "coupon-pits")
     try:
         read_future = hash_future = None
         if hpath is not None:

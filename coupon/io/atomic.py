@@ -136,9 +136,9 @@ class BackgroundWrites:
     _active: "BackgroundWrites | None" = None
 
     def __init__(self):
-        from concurrent.futures import ThreadPoolExecutor
+        from coupon.io.threads import thread_pool
 
-        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="coupon-writes")
+        self._pool = thread_pool(1, "coupon-writes")
         self._pending: list = []
         self.errors: list[str] = []
 

@@ -118,13 +118,13 @@ class Prefetch:
     """
 
     def __init__(self, items: Iterable[Any], load: Callable[[Any], Any]):
-        from concurrent.futures import ThreadPoolExecutor
+        from coupon.io.threads import thread_pool
 
         self.items = list(items)
         self._next = {a: b for a, b in zip(self.items, self.items[1:])}
         self._load = load
         self._ahead: dict = {}
-        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="coupon-prefetch")
+        self._pool = thread_pool(1, "coupon-prefetch")
 
     def __call__(self, item: Any) -> Any:
         fut = self._ahead.pop(item, None)

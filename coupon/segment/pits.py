@@ -35,7 +35,6 @@ from __future__ import annotations
 
 import threading
 from collections.abc import Callable
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import cv2
@@ -52,6 +51,7 @@ from coupon.calibrate.scale import check_px_per_mm, warp_to_mm_grid
 from coupon.errors import AnalysisError
 from coupon.io.heightmap import PLAUSIBLE_SPREAD_MM
 from coupon.io.images import float01
+from coupon.io.threads import thread_pool
 
 #: How pits look: dark openings, or openings outlined by a bright lip (low-angle or ring light).
 PIT_LOOKS = ("dark", "bright-rim")
@@ -648,7 +648,7 @@ def find_region(grey: np.ndarray, edge_px: float, whole_frame: bool = False) -> 
     # masks on two threads (numpy's array loops release the GIL)
     masks = lambda t: up.greater(t, np.empty((h, w), bool))  # noqa: E731
     if _threads() > 1:
-        with ThreadPoolExecutor(max_workers=2) as pool:
+        with thread_pool(2, "coupon-pits") as pool:
             coupon, analysed = pool.map(masks, (0.0, max(edge_px, 0.5)))
     else:
         coupon, analysed = masks(0.0), masks(max(edge_px, 0.5))
@@ -807,7 +807,7 @@ def candidate_pixels(grey: np.ndarray, background: np.ndarray, coupon: np.ndarra
         # the top and bottom halves on two threads (OpenCV and numpy's array loops release the GIL);
         # concatenated in order, so the result is the one-thread result
         half = len(strips) // 2
-        with ThreadPoolExecutor(max_workers=2) as pool:
+        with thread_pool(2, "coupon-pits") as pool:
             parts = list(pool.map(run, [strips[:half], strips[half:]]))
     else:
         parts = [run(strips)]
@@ -1531,7 +1531,7 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
             sample = exposure_sample(rgb, grey)
     window = settings.flatten_mm * s
     # the background's reduced grey level needs no region: made on a second thread while the region is found
-    pool = ThreadPoolExecutor(max_workers=1) if _threads() > 1 else None
+    pool = thread_pool(1, "coupon-pits") if _threads() > 1 else None
     reduced = pool.submit(_reduce, grey, background_factor(window)) if pool is not None else None
     try:
         region = find_region(grey, settings.edge_mm * s, settings.whole_frame)

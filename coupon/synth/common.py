@@ -7,6 +7,7 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from coupon.calibrate import colourspace as cs
+from coupon.calibrate.scale import warp_perspective
 
 
 def rng_for(seed: int) -> np.random.Generator:
@@ -51,10 +52,10 @@ def render_plane(
     # plane pixel (u, v) centre is at mm ((u + 0.5) / s, (v + 0.5) / s)
     planepx_to_mm = np.array([[1 / s, 0, 0.5 / s], [0, 1 / s, 0.5 / s], [0, 0, 1]])
     m = hom_mm_to_img @ planepx_to_mm
-    warped = cv2.warpPerspective(plane_rgb, m, image_wh, flags=cv2.INTER_AREA | cv2.INTER_LINEAR,
-                                 borderMode=cv2.BORDER_CONSTANT, borderValue=0)
+    warped = warp_perspective(plane_rgb, m, image_wh, flags=cv2.INTER_AREA | cv2.INTER_LINEAR,
+                              border=cv2.BORDER_CONSTANT)
     ones = np.ones(plane_rgb.shape[:2], np.float32)
-    cover = cv2.warpPerspective(ones, m, image_wh, flags=cv2.INTER_LINEAR, borderMode=cv2.BORDER_CONSTANT)
+    cover = warp_perspective(ones, m, image_wh, flags=cv2.INTER_LINEAR, border=cv2.BORDER_CONSTANT)
     out = warped + background * (1 - cover[..., None])
     return out.astype(np.float32), cover
 

@@ -31,9 +31,11 @@ from coupon.calibrate.scale import (
     check_px_per_mm,
     quad_area_px2,
     scale_from_rectangle,
+    warp_to_mm_grid,
 )
 from coupon.errors import AnalysisError
 from coupon.io.images import float01
+from coupon.io.threads import thread_pool
 from coupon.segment.panels.rust import _sample_idx, lstsq_quadratic
 
 _LUT_LEVELS = 4096
@@ -409,14 +411,9 @@ def rectify_panel(rgb: np.ndarray, corners_xy: np.ndarray, size_mm: tuple[float,
     crop = linearize(rgb[y0:y1, x0:x1])
     shift = np.array([[1, 0, x0], [0, 1, y0], [0, 0, 1]], dtype=np.float64)
     check_px_per_mm(px_per_mm)
-    # warp_to_mm_grid's mapping (pixel centres at (u + 0.5) / s mm), warped into a numpy-allocated
-    # output: the 13.5 MB panel that OpenCV allocates itself faults in 4 kB pages (about 5 ms a panel)
     s = float(px_per_mm)
-    to_grid = np.array([[s, 0, -0.5], [0, s, -0.5], [0, 0, 1]], dtype=np.float64)
-    out_wh = (int(round(w_mm * s)), int(round(h_mm * s)))
-    lin = np.empty((out_wh[1], out_wh[0], 3), np.float32)
-    cv2.warpPerspective(crop, to_grid @ (cal.homography @ shift), out_wh, dst=lin,
-                        flags=cv2.INTER_AREA if s < 1 else cv2.INTER_LINEAR, borderMode=cv2.BORDER_REPLICATE)
+    lin = np.empty((int(round(h_mm * s)), int(round(w_mm * s)), 3), np.float32)
+    warp_to_mm_grid(crop, cal.homography @ shift, (w_mm, h_mm), s, dst=lin)
     return RectifiedPanel(lin, float(px_per_mm), (w_mm, h_mm), cal)
 
 
@@ -483,9 +480,7 @@ def read_qr_codes(rgb: np.ndarray, quads: list[PanelQuad], grow: float = 0.25) -
     # 60 ms for six panel crops of a 12 MP tray on one
     threads = min(2, cv2.getNumThreads(), len(quads))
     if threads > 1:
-        from concurrent.futures import ThreadPoolExecutor
-
-        with ThreadPoolExecutor(max_workers=threads, thread_name_prefix="coupon-qr") as pool:
+        with thread_pool(threads, "coupon-qr") as pool:
             crops = list(pool.map(crop, quads))
     else:
         crops = [crop(q) for q in quads]
