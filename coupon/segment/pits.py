@@ -1529,16 +1529,25 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
             rgb, height_mm, rectified = rect
             grey = grey_pixels(rgb, _scratch("pit_grey", rgb.shape[:2], np.float32))
             sample = exposure_sample(rgb, grey)
-    window = settings.flatten_mm * s
-    # the background's reduced grey level needs no region: made on a second thread while the region is found
+    # one helper thread for the steps that need no result of the main thread's current one
     pool = thread_pool(1, "coupon-pits") if _threads() > 1 else None
-    reduced = pool.submit(_reduce, grey, background_factor(window)) if pool is not None else None
     try:
-        region = find_region(grey, settings.edge_mm * s, settings.whole_frame)
-        reduced = reduced.result() if reduced is not None else None
+        return _analyse_region(rgb, grey, sample, settings, height_mm, rectified, homography_px_to_mm,
+                               height_unit, on_region, pool)
     finally:
         if pool is not None:
             pool.shutdown(wait=True)
+
+
+def _analyse_region(rgb, grey, sample, settings: PitSettings, height_mm, rectified, homography_px_to_mm,
+                    height_unit, on_region, pool) -> PitAnalysis:
+    """:func:`analyse_pits` from the region on; ``pool``: its helper thread, or None."""
+    s = settings.px_per_mm
+    window = settings.flatten_mm * s
+    # the background's reduced grey level needs no region: made on the helper thread while the region is found
+    reduced = pool.submit(_reduce, grey, background_factor(window)) if pool is not None else None
+    region = find_region(grey, settings.edge_mm * s, settings.whole_frame)
+    reduced = reduced.result() if reduced is not None else None
     coupon, analysed = region.coupon, region.analysed
     area_px = int(np.count_nonzero(analysed))
     if area_px < 100:
@@ -1549,6 +1558,8 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
     if clipped > 0.05:
         raise AnalysisError(f"coupon surface is overexposed ({100 * clipped:.0f} % of its pixels clipped at white); "
                             "reduce the exposure so the metal is not saturated")
+    # the outline's length (a contour search over the full frame) on the helper thread, while the pits are found
+    perimeter = pool.submit(region_perimeter_px, analysed) if pool is not None else None
     if on_region is not None:
         on_region(rgb, analysed)
     # a quarter of a million points estimate the noise (robust sigma: its standard error is about 0.2 %)
@@ -1572,6 +1583,7 @@ def analyse_pits(rgb: np.ndarray, settings: PitSettings, height_mm: np.ndarray |
         else "homography square-on within 1 %: picture used as it is")
     return PitAnalysis(
         pits=table, labels=labels, coupon=coupon, analysed=analysed,
-        analysed_area_mm2=area_px / s**2, perimeter_mm=region_perimeter_px(analysed) / s, details=details,
+        analysed_area_mm2=area_px / s**2, details=details,
+        perimeter_mm=(perimeter.result() if perimeter is not None else region_perimeter_px(analysed)) / s,
         rectified_rgb=rgb if rectified is not None else None,
     )
