@@ -225,3 +225,26 @@ def test_colour_jpeg_decoded_straight_to_rgb_equals_opencv_bgr_decode(tmp_path):
     img = load_image(path)
     assert img.rgb_u8.dtype == np.uint8 and np.array_equal(img.rgb_u8, ref)
     assert img.notes == ()
+
+
+@pytest.mark.parametrize("name, flag, pil_code", [
+    ("4:4:4", cv2.IMWRITE_JPEG_SAMPLING_FACTOR_444, 0), ("4:2:2", cv2.IMWRITE_JPEG_SAMPLING_FACTOR_422, 1),
+    ("4:2:0", cv2.IMWRITE_JPEG_SAMPLING_FACTOR_420, 2)])
+def test_jpeg_chroma_subsampling_is_read_from_the_frame_header(tmp_path, name, flag, pil_code):
+    # reference: Pillow's own reading of the same header (JpegImagePlugin.get_sampling: 0 = 4:4:4,
+    # 1 = 4:2:2, 2 = 4:2:0; the sampling factors of ITU-T T.81's frame header)
+    from PIL import JpegImagePlugin
+
+    path = tmp_path / "img.jpg"
+    cv2.imwrite(str(path), cv2.cvtColor(_u8(GRADIENT), cv2.COLOR_RGB2BGR), [cv2.IMWRITE_JPEG_SAMPLING_FACTOR, flag])
+    with Image.open(path) as im:
+        assert JpegImagePlugin.get_sampling(im) == pil_code
+    assert load_image(path).chroma_subsampling == name
+
+
+def test_no_chroma_subsampling_for_other_files_and_grey_jpegs(tmp_path):
+    png, grey = tmp_path / "img.png", tmp_path / "grey.jpg"
+    cv2.imwrite(str(png), _u8(GRADIENT))
+    cv2.imwrite(str(grey), _u8(GRADIENT)[..., 0])
+    assert load_image(png).chroma_subsampling is None
+    assert load_image(grey).chroma_subsampling is None

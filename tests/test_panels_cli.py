@@ -50,6 +50,14 @@ def test_end_to_end_outputs(runner, tray_file, tmp_path):
     assert table["scribe_found"].tolist() == [False, True]
     centre = truth["panels"][1]["centre_img_xy"]
     assert abs(table.loc[1, "x_px"] - centre[0]) < 2 and abs(table.loc[1, "y_px"] - centre[1]) < 2
+    # the panel's resolution in the photo: the painted quadrilateral's shoelace area over the nominal area
+    for i in (0, 1):
+        x, y = np.asarray(truth["panels"][i]["corners_img_xy"], float).T
+        area = 0.5 * abs(np.dot(x, np.roll(y, -1)) - np.dot(y, np.roll(x, -1)))
+        assert table.loc[i, "photo_px_per_mm"] == pytest.approx(np.sqrt(area / (75 * 150)), rel=0.01)
+    # written by OpenCV's JPEG encoder with its default 4:2:0 chroma: said once, with what to do
+    assert (table["chroma_subsampling"] == "4:2:0").all()
+    assert res.output.count("chroma subsampling") == 1 and "save 4:4:4 JPEG, TIFF or PNG" in res.output
     js = json.loads((tmp_path / "out" / "panels" / "rack2_0240h_BW-1-B.json").read_text())
     assert js["coupon_version"] and "settings" in js and "profile_sha256" in js
     assert len(js["creep_stations"]) > 50
@@ -192,3 +200,16 @@ def test_one_worker_and_two_workers_give_the_same_panels(runner, tray_file, tmp_
         tables.append(t.drop(columns=["overlay", "json"]))
     assert len(tables[0]) == 6 and (tables[0]["status"] == "ok").all()
     pd.testing.assert_frame_equal(tables[0], tables[1])
+
+
+def test_photo_warnings_name_the_lowest_resolution_and_the_chroma():
+    from coupon.cli.panels import photo_warnings
+
+    rows = [{"image": "a/t1.jpg", "photo_px_per_mm": 7.2, "chroma_subsampling": "4:4:4"},
+            {"image": "a/t2.jpg", "photo_px_per_mm": 3.1, "chroma_subsampling": "4:2:0"},
+            {"image": "a/t2.jpg", "photo_px_per_mm": 3.3, "chroma_subsampling": "4:2:0"},
+            {"image": "a/t3.png", "photo_px_per_mm": float("nan"), "chroma_subsampling": ""}]
+    low, chroma = photo_warnings(rows)
+    assert low.startswith("1 photo(s) show panels at under 4 px/mm (lowest 3.1 px/mm, t2.jpg)")
+    assert chroma.startswith("1 photo(s) are JPEGs with 4:2:0 chroma subsampling")
+    assert photo_warnings(rows[:1] + rows[3:]) == []  # 4:4:4 at 7.2 px/mm and a PNG: nothing to say

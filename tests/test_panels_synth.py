@@ -164,6 +164,28 @@ def test_pinpoint_on_grey_and_dark_coatings(coating, seed):
     assert res["rust_distribution"] == truth["panels"][0]["distribution"] == "P"
 
 
+# JPEG chroma sampling, 1 % pinpoint rust at about 7.5 px/mm (issue 3 tolerance): with 4:4:4 chroma the
+# unmixing recovers it on grey and dark coatings; with 4:2:0 (most cameras) it reads high, 1.25 x on grey
+# and 1.45 x on dark (coupon.segment.panels.rust.PINPOINT_MIN_PHOTO_PX_PER_MM's notes), beyond the
+# tolerance: a known fault, kept here as a strict xfail so that a fix shows
+_PINPOINT_420 = pytest.mark.xfail(strict=True, reason="4:2:0 JPEG: pinpoint on grey and dark reads 1.25 to 1.45 x")
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("coating, chroma", [("grey", "4:4:4"), ("dark", "4:4:4"),
+                                             pytest.param("grey", "4:2:0", marks=_PINPOINT_420),
+                                             pytest.param("dark", "4:2:0", marks=_PINPOINT_420)])
+def test_dense_pinpoint_at_7_px_per_mm_by_jpeg_chroma(coating, chroma):
+    img, truth = tray_scene([PanelSpec(coating, ("pinpoint",), amount=3.0)], seed=3,
+                            settings=TraySettings(image_wh=(1100, 1900), cols=1, plane_px_per_mm=24.0,
+                                                  jpeg_chroma=chroma))
+    q = find_panels(img)[0]
+    res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
+    tr = truth_rust(truth["panels"][0], 5.0)["rust_area_pct"]
+    assert tr > 0.9  # dense enough for the relative tolerance to apply (15 % of 0.9 % > 0.1 pp)
+    assert _rust_ok(res["rust_area_pct"], tr), (coating, chroma, res["rust_area_pct"], tr)
+
+
 def test_grey_dirt_is_not_rust_for_the_lightness_test():
     # dirt: darker and neutral (no chroma lean); the lightness test must not take it for rust
     # (ASTM D610-08: dirt is not rust)

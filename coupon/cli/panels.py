@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import re
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -47,13 +48,13 @@ from coupon.segment.panels.detect import (
     read_qr_codes,
     rectify_panel,
 )
-from coupon.segment.panels.rust import RustSettings
+from coupon.segment.panels.rust import PINPOINT_MIN_PHOTO_PX_PER_MM, RustSettings
 from coupon.segment.panels.scribe import SCRIBE_MODES, ScribeSettings
 
 #: Columns of DIR/panels.csv (kept even when a batch finds nothing).
 PANEL_COLUMNS = [
     "image", "panel_id", "id_source", "system", "replicate", "position", "row", "col", "exposure_h",
-    "x_px", "y_px", "rated_area_mm2", "rust_area_mm2", "rust_area_pct", "rust_area_pct_unc", "rust_sites",
+    "x_px", "y_px", "photo_px_per_mm", "chroma_subsampling", "rated_area_mm2", "rust_area_mm2", "rust_area_pct", "rust_area_pct_unc", "rust_sites",
     "rust_grade", "rust_distribution", "rust_grade_written", "ri_degree", "scribe_found", "scribe_kind",
     "creep_mean_mm", "creep_max_mm", "creep_min_mm", "creep_left_mean_mm", "creep_right_mean_mm",
     "creep_rating", "overlay", "json", "status",
@@ -126,6 +127,39 @@ def parse_mask(text: str) -> tuple:
                              param_hint="--mask")
 
 
+class PhotoLimitWarning(UserWarning):
+    """Photos beyond the limits within which pinpoint rust was measured correctly (the panels command)."""
+
+
+def photo_warnings(rows: list[dict]) -> list[str]:
+    """One-line warnings about the photos behind ``rows`` (panel rows of one run): panels below
+    :data:`~coupon.segment.panels.rust.PINPOINT_MIN_PHOTO_PX_PER_MM` in the photo, and JPEGs with
+    subsampled chroma (see that constant's notes for the measurements)."""
+    out = []
+    low: dict[str, float] = {}
+    chroma: dict[str, str] = {}
+    for r in rows:
+        res = r.get("photo_px_per_mm")
+        if isinstance(res, float) and np.isfinite(res) and res < PINPOINT_MIN_PHOTO_PX_PER_MM:
+            low[r["image"]] = min(res, low.get(r["image"], np.inf))
+        c = r.get("chroma_subsampling")
+        if isinstance(c, str) and c and c != "4:4:4":
+            chroma[r["image"]] = c
+    if low:
+        worst = min(low, key=low.get)
+        out.append(f"{len(low)} photo(s) show panels at under {PINPOINT_MIN_PHOTO_PX_PER_MM:g} px/mm (lowest "
+                   f"{low[worst]:.1f} px/mm, {Path(worst).name}): pinpoint rust on grey and dark coatings reads low "
+                   "there (about half at 3 px/mm on synthetic trays); photograph at 8 px/mm or more where pinpoint "
+                   "rust matters")
+    if chroma:
+        kinds = "/".join(sorted(set(chroma.values())))
+        out.append(f"{len(chroma)} photo(s) are JPEGs with {kinds} chroma subsampling (colour stored for blocks of "
+                   "pixels): pinpoint rust on grey and dark coatings reads high (1.25 and 1.45 times at 7.5 px/mm "
+                   "on synthetic trays, 1.1 and 1.0 as 4:4:4 JPEG); where pinpoint rust matters, save 4:4:4 JPEG, "
+                   "TIFF or PNG")
+    return out
+
+
 def _safe(text: str) -> str:
     return re.sub(r"[^A-Za-z0-9._-]+", "_", text).strip("_") or "panel"
 
@@ -183,7 +217,7 @@ def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out
 
     def one(i: int) -> dict:
         return _rate_quad(path, img.sha256, pixels, quads[i], qr.get(i), settings, profile, out_dir, layout,
-                          exposure_h, px_scale, median_area)
+                          exposure_h, px_scale, median_area, img.chroma_subsampling or "")
 
     threads = min(panel_threads(), len(quads))
     if threads <= 1:
@@ -194,7 +228,7 @@ def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out
 
 def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings: PanelSettings,
                profile: Profile | None, out_dir: Path, layout: dict | None, exposure_h: float | None,
-               px_scale: float | None, median_area: float | None) -> dict:
+               px_scale: float | None, median_area: float | None, chroma: str = "") -> dict:
     """The CSV row of one found panel (rectify, rate, overlay, JSON); ``qr_hit`` is (text, corners) or None."""
     r, c = q.position
     ident = {"panel_id": f"R{r}C{c}", "id_source": "position", "system": "", "replicate": ""}
@@ -206,7 +240,10 @@ def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings:
     row = _empty_row(str(path), "ok") | ident | {
         "position": f"R{r}C{c}", "row": r, "col": c,
         "exposure_h": np.nan if exposure_h is None else float(exposure_h),
-        "x_px": float(centre[0]), "y_px": float(centre[1]),
+        "x_px": float(centre[0]), "y_px": float(centre[1]), "chroma_subsampling": chroma,
+        # the panel's own resolution in the photo (areal mean over its quadrilateral)
+        "photo_px_per_mm": (float(np.sqrt(q.area_px2 / (settings.size_mm[0] * settings.size_mm[1])))
+                            if q.touches is None else np.nan),
     }
     if q.touches is not None:
         row["status"] = (f"panel partly outside the frame (touches the {q.touches} edge); "
@@ -386,10 +423,12 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
     # in-process, the next photo decodes on a helper thread while this one is rated
     ahead = Prefetch(todo if workers <= 1 else [], job.load)
     func = (lambda p: job(p, ahead(p))) if workers <= 1 else job
+    rated_now: list[dict] = []
     with ahead:
         for out in run_batch(todo, func, workers=workers, label="Rating panels"):
             if out.ok:
                 rows = out.result
+                rated_now += rows
                 bad = [r for r in rows if r["status"] != "ok"]
                 failed += bool(bad)
                 for r in bad:
@@ -411,6 +450,8 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
                 rows = [_empty_row(str(out.item), out.error)]
             by_image[str(out.item)] = rows
     ledger.flush()
+    for text in photo_warnings(rated_now):
+        warnings.warn(text, PhotoLimitWarning, stacklevel=1)
     all_rows = [r for rows in by_image.values() for r in rows]
     write_csv(table_path, pd.DataFrame(all_rows, columns=PANEL_COLUMNS))
     click.echo(f"table: {table_path}\ndatabase: {db}")

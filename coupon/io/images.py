@@ -72,6 +72,10 @@ class LoadedImage:
         EXIF DateTimeOriginal (or DateTime) when present, as naive local time.
     notes : tuple of str
         What was done to fit the convention (orientation, alpha dropped, grey promoted).
+    chroma_subsampling : str or None
+        A colour JPEG's chroma sampling ("4:4:4", "4:2:2", "4:2:0", ...), None for other files.
+        With 4:2:0 (most camera JPEGs) colour is stored per 2 x 2 pixels, which colours a speck's
+        neighbours (see the panels command's warning).
     """
 
     path: Path
@@ -80,6 +84,7 @@ class LoadedImage:
     sha256: str
     capture_time: _dt.datetime | None = None
     notes: tuple[str, ...] = ()
+    chroma_subsampling: str | None = None
 
     @cached_property
     def rgb(self) -> np.ndarray:
@@ -153,14 +158,27 @@ def _read_exif(im: Image.Image) -> Image.Exif:
     return im.getexif()
 
 
-def _header(data: bytes, path: Path, max_pixels: int) -> tuple[int, _dt.datetime | None, bool]:
+def _chroma_subsampling(im) -> str | None:
+    """J:a:b notation of a three-component JPEG's sampling factors (from its frame header), else None."""
+    layer = getattr(im, "layer", None)
+    if not layer or len(layer) != 3:
+        return None
+    (_, hy, vy, _), (_, hc, vc, _) = layer[0], layer[1]
+    if (hc, vc) != tuple(layer[2][1:3]) or hc <= 0 or vc <= 0 or hy % hc or vy % vc:
+        return None
+    a = 4 * hc // hy
+    return f"4:{a}:{a if vy == vc else 0}"
+
+
+def _header(data: bytes, path: Path, max_pixels: int) -> tuple[int, _dt.datetime | None, bool, str | None]:
     """Check the header before decoding; return (EXIF orientation, capture time, whether the file is an
-    8-bit three-channel JPEG)."""
+    8-bit three-channel JPEG, its chroma subsampling)."""
     try:
         with Image.open(io.BytesIO(data)) as im:
             width, height = im.size
             fmt = im.format
             rgb_jpeg = fmt in ("JPEG", "MPO") and im.mode == "RGB"  # MPO: a camera JPEG with extra pictures
+            chroma = _chroma_subsampling(im) if rgb_jpeg else None
             if width > 0 and height > 0 and width * height <= max_pixels:
                 exif = _read_exif(im)
     except UnidentifiedImageError:
@@ -187,7 +205,7 @@ def _header(data: bytes, path: Path, max_pixels: int) -> tuple[int, _dt.datetime
         capture = None
     if capture is None:
         capture = _parse_exif_time(exif.get(_EXIF_DATETIME))
-    return orientation, capture, rgb_jpeg
+    return orientation, capture, rgb_jpeg, chroma
 
 
 def _apply_orientation(arr: np.ndarray, orientation: int) -> np.ndarray:
@@ -305,7 +323,7 @@ def load_image(path: str | os.PathLike, max_pixels: int = DEFAULT_MAX_PIXELS) ->
     """
     path = Path(path)
     data = _read_bytes(path)
-    orientation, capture, rgb_jpeg = _header(data, path, max_pixels)
+    orientation, capture, rgb_jpeg, chroma = _header(data, path, max_pixels)
     buf = np.frombuffer(data, dtype=np.uint8)
     # a colour JPEG is decoded straight to RGB (OpenCV 4.10 or later): no BGR-to-RGB pass over the frame
     # and no second frame-sized array; EXIF orientation is applied below, as for every other file
@@ -342,6 +360,7 @@ def load_image(path: str | os.PathLike, max_pixels: int = DEFAULT_MAX_PIXELS) ->
         sha256=hashlib.sha256(data).hexdigest(),
         capture_time=capture,
         notes=tuple(notes),
+        chroma_subsampling=chroma,
     )
 
 

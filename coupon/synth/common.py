@@ -83,10 +83,18 @@ def sensor_noise(rgb: np.ndarray, rng: np.random.Generator, sigma: float = 0.01)
     return np.clip(rgb + noise, 0, 1)
 
 
-def jpeg_roundtrip(rgb: np.ndarray, quality: int = 90) -> np.ndarray:
-    """Encode and decode as JPEG (OpenCV codec, 4:2:0 chroma as cameras do)."""
+#: OpenCV's JPEG chroma sampling settings by J:a:b name.
+JPEG_CHROMA = {"4:2:0": cv2.IMWRITE_JPEG_SAMPLING_FACTOR_420, "4:2:2": cv2.IMWRITE_JPEG_SAMPLING_FACTOR_422,
+               "4:4:4": cv2.IMWRITE_JPEG_SAMPLING_FACTOR_444}
+
+
+def jpeg_roundtrip(rgb: np.ndarray, quality: int = 90, chroma: str = "4:2:0") -> np.ndarray:
+    """Encode and decode as JPEG (OpenCV codec); ``chroma``: sampling, 4:2:0 as most cameras save."""
     u8 = cv2.cvtColor(np.clip(np.rint(rgb * 255), 0, 255).astype(np.uint8), cv2.COLOR_RGB2BGR)
-    ok, buf = cv2.imencode(".jpg", u8, [cv2.IMWRITE_JPEG_QUALITY, int(quality)])
+    params = [cv2.IMWRITE_JPEG_QUALITY, int(quality)]
+    if chroma != "4:2:0":  # OpenCV's default
+        params += [cv2.IMWRITE_JPEG_SAMPLING_FACTOR, JPEG_CHROMA[chroma]]
+    ok, buf = cv2.imencode(".jpg", u8, params)
     assert ok
     return cv2.cvtColor(cv2.imdecode(buf, cv2.IMREAD_COLOR), cv2.COLOR_BGR2RGB).astype(np.float32) / 255.0
 

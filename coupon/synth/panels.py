@@ -387,6 +387,7 @@ class TraySettings:
     #: luminance-correlated part of the sensor noise (demosaicing correlates the channels)
     grain: float = 0.0
     jpeg_quality: int | None = 92
+    jpeg_chroma: str = "4:2:0"  # chroma sampling of the JPEG (see coupon.synth.common.JPEG_CHROMA)
     plane_px_per_mm: float = 12.0
     max_rotation_deg: float = 2.0
     shift_mm: tuple[float, float] = (0.0, 0.0)
@@ -456,7 +457,7 @@ def tray_scene(panels: list[PanelSpec], seed: int = 0, settings: TraySettings = 
     else:
         rgb = common.sensor_noise(rgb, rng, st.noise)
     if st.jpeg_quality:
-        rgb = common.jpeg_roundtrip(rgb, st.jpeg_quality)
+        rgb = common.jpeg_roundtrip(rgb, st.jpeg_quality, st.jpeg_chroma)
     return rgb, {"panels": out_panels, "hom_tray_mm_to_img": hom_tray, "px_per_mm": px_per_mm,
                  "tray_size_mm": (tray_w, tray_h), "settings": st}
 

@@ -60,6 +60,20 @@ PEAK_FRACTION_SIGMA = 6.0
 #: Relative standard uncertainty of the unmixed rust area from the colour model (coupon's estimate).
 COLOUR_MODEL_REL_UNC = 0.10
 
+#: Limits of pinpoint rust (specks of 0.12 to 0.25 mm radius) found in synthetic trays; the panels
+#: command warns when a photo is beyond them.  Measured over true rust area, synthetic trays, 2 to 3
+#: seeds each (sixth session's study):
+#:
+#: * resolution of the panel in the photo (0.1 % pinpoint rust, JPEG q92 4:2:0): grey 0.19 at 2.4 px/mm,
+#:   0.53 at 3.1, 0.92 at 4.2; dark 0.13, 0.37, 1.15; white 0.87, 0.96, 0.99.  Below
+#:   :data:`PINPOINT_MIN_PHOTO_PX_PER_MM` the specks blur into the coating and read low;
+#: * JPEG chroma subsampling (1 % pinpoint rust at 7.5 px/mm, q92): with 4:2:0 dark 1.43 to 1.48, grey
+#:   1.25, white 1.03; the same photos as 4:4:4 JPEG 1.02, 1.09 to 1.10, 1.02; without JPEG 0.94, 0.95,
+#:   1.00.  4:2:0 stores colour per 2 x 2 pixels: a speck's colour spreads to its neighbours, whose
+#:   lightness stays the coating's, and on a dark coating a reddish pixel of the coating's own
+#:   lightness is exactly what the darkest rust colour mixed in at about 60 % looks like.
+PINPOINT_MIN_PHOTO_PX_PER_MM = 4.0
+
 
 @dataclass(frozen=True)
 class RustSettings:
