@@ -7,6 +7,7 @@ within 0.3 mm; rectified area within 1 % of the nominal size.
 
 from __future__ import annotations
 
+import functools
 import cv2
 import numpy as np
 import pytest
@@ -184,6 +185,37 @@ def test_dense_pinpoint_at_7_px_per_mm_by_jpeg_chroma(coating, chroma):
     tr = truth_rust(truth["panels"][0], 5.0)["rust_area_pct"]
     assert tr > 0.9  # dense enough for the relative tolerance to apply (15 % of 0.9 % > 0.1 pp)
     assert _rust_ok(res["rust_area_pct"], tr), (coating, chroma, res["rust_area_pct"], tr)
+
+
+# Spots and general rust at about 7.5 px/mm (issue 3 tolerance).  White and grey hold it; on the dark coating
+# both read 0.77 to 0.89 of the truth: a dim rust pixel there looks like a partly covered pixel of brighter rust
+# (COLOUR_MODEL_REL_UNC_DARK's notes), a known fault kept as a strict xfail.  Whatever the coating, the stated
+# uncertainty must cover the error: within 2.5 standard uncertainties of the truth.
+_DARK_BRIGHTNESS = pytest.mark.xfail(strict=True, reason="dark coating: spots and general read 0.77 to 0.89 x")
+_AT_7_PX = [(c, k) for c in ("white", "grey", "dark") for k in ("spots", "general")]
+
+
+@functools.lru_cache(maxsize=None)
+def _rated_at_7_px_per_mm(coating: str, kind: str) -> tuple[float, float, float]:
+    img, truth = tray_scene([PanelSpec(coating, (kind,))], seed=4, settings=TraySettings(image_wh=(1100, 1900), cols=1))
+    q = find_panels(img)[0]
+    res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
+    return res["rust_area_pct"], res["rust_area_pct_unc"], truth_rust(truth["panels"][0], 5.0)["rust_area_pct"]
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("coating, kind", [pytest.param(c, k, marks=_DARK_BRIGHTNESS) if c == "dark" else (c, k)
+                                           for c, k in _AT_7_PX])
+def test_spots_and_general_at_7_px_per_mm(coating, kind):
+    measured, _, tr = _rated_at_7_px_per_mm(coating, kind)
+    assert _rust_ok(measured, tr), (coating, kind, measured, tr)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("coating, kind", _AT_7_PX)
+def test_stated_rust_uncertainty_covers_the_error_at_7_px_per_mm(coating, kind):
+    measured, unc, tr = _rated_at_7_px_per_mm(coating, kind)
+    assert abs(measured - tr) <= 2.5 * unc, (coating, kind, measured, unc, tr)
 
 
 def test_grey_dirt_is_not_rust_for_the_lightness_test():
