@@ -202,14 +202,16 @@ def test_one_worker_and_two_workers_give_the_same_panels(runner, tray_file, tmp_
     pd.testing.assert_frame_equal(tables[0], tables[1])
 
 
-def test_photo_warnings_name_the_lowest_resolution_and_the_chroma():
-    from coupon.cli.panels import photo_warnings
+def test_limit_warnings_name_the_lowest_resolution_the_chroma_and_dark_coatings():
+    from coupon.cli.panels import limit_warnings
 
-    rows = [{"image": "a/t1.jpg", "photo_px_per_mm": 7.2, "chroma_subsampling": "4:4:4"},
-            {"image": "a/t2.jpg", "photo_px_per_mm": 3.1, "chroma_subsampling": "4:2:0"},
-            {"image": "a/t2.jpg", "photo_px_per_mm": 3.3, "chroma_subsampling": "4:2:0"},
-            {"image": "a/t3.png", "photo_px_per_mm": float("nan"), "chroma_subsampling": ""}]
-    low, chroma = photo_warnings(rows)
+    rows = [{"image": "a/t1.jpg", "position": "R1C1", "photo_px_per_mm": 7.2, "chroma_subsampling": "4:4:4"},
+            {"image": "a/t2.jpg", "position": "R1C1", "photo_px_per_mm": 3.1, "chroma_subsampling": "4:2:0"},
+            {"image": "a/t2.jpg", "position": "R1C2", "photo_px_per_mm": 3.3, "chroma_subsampling": "4:2:0",
+             "coating_darker_than_rust": True},
+            {"image": "a/t3.png", "position": "R1C1", "photo_px_per_mm": float("nan"), "chroma_subsampling": ""}]
+    low, chroma, dark = limit_warnings(rows)
     assert low.startswith("1 photo(s) show panels at under 4 px/mm (lowest 3.1 px/mm, t2.jpg)")
     assert chroma.startswith("1 photo(s) are JPEGs with 4:2:0 chroma subsampling")
-    assert photo_warnings(rows[:1] + rows[3:]) == []  # 4:4:4 at 7.2 px/mm and a PNG: nothing to say
+    assert dark.startswith("1 panel(s) on dark coatings, darker than the rust colours (t2.jpg R1C2)")
+    assert limit_warnings(rows[:1] + rows[3:]) == []  # 4:4:4 at 7.2 px/mm and a PNG: nothing to say

@@ -128,17 +128,19 @@ def parse_mask(text: str) -> tuple:
                              param_hint="--mask")
 
 
-class PhotoLimitWarning(UserWarning):
-    """Photos beyond the limits within which pinpoint rust was measured correctly (the panels command)."""
+class RatingLimitWarning(UserWarning):
+    """Photos or panels beyond the limits within which rust was measured correctly (the panels command)."""
 
 
-def photo_warnings(rows: list[dict]) -> list[str]:
-    """One-line warnings about the photos behind ``rows`` (panel rows of one run): panels below
-    :data:`~coupon.segment.panels.rust.PINPOINT_MIN_PHOTO_PX_PER_MM` in the photo, and JPEGs with
-    subsampled chroma (see that constant's notes for the measurements)."""
+def limit_warnings(rows: list[dict]) -> list[str]:
+    """One-line warnings about the panel rows of one run: panels below
+    :data:`~coupon.segment.panels.rust.PINPOINT_MIN_PHOTO_PX_PER_MM` in the photo, JPEGs with subsampled
+    chroma (see that constant's notes for the measurements), and panels on coatings darker than the rust
+    colours (:data:`~coupon.segment.panels.rust.COLOUR_MODEL_REL_UNC_DARK`)."""
     out = []
     low: dict[str, float] = {}
     chroma: dict[str, str] = {}
+    dark = [f"{Path(r['image']).name} {r['position']}" for r in rows if r.get("coating_darker_than_rust")]
     for r in rows:
         res = r.get("photo_px_per_mm")
         if isinstance(res, float) and np.isfinite(res) and res < PINPOINT_MIN_PHOTO_PX_PER_MM:
@@ -158,6 +160,11 @@ def photo_warnings(rows: list[dict]) -> list[str]:
                    "pixels): pinpoint rust on grey and dark coatings reads high (1.25 and 1.45 times at 7.5 px/mm "
                    "on synthetic trays, 1.1 and 1.0 as 4:4:4 JPEG); where pinpoint rust matters, save 4:4:4 JPEG, "
                    "TIFF or PNG")
+    if dark:
+        named = ", ".join(dark[:3]) + (", ..." if len(dark) > 3 else "")
+        out.append(f"{len(dark)} panel(s) on dark coatings, darker than the rust colours ({named}): their rust area "
+                   "reads low (spots and general rust 0.77 to 0.89 of the truth on synthetic trays) and their "
+                   "rust_area_pct_unc carries a 20 % colour-model term; compare them with panels of the same coating")
     return out
 
 
@@ -279,14 +286,15 @@ def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings:
     for k in PANEL_COLUMNS:
         if k in res:
             row[k] = res[k]
-    row.update(overlay=str(overlay), status=status)
+    row.update(overlay=str(overlay), status=status, coating_darker_than_rust=res["coating_darker_than_rust"])
     jpath = out_dir / "panels" / f"{stem}.json"
     row["json"] = str(jpath)
     scribe = res["_scribe"]
     write_json(jpath, {
         **{k: row[k] for k in PANEL_COLUMNS},
         "corners_xy": q.corners_xy.tolist(), "panel_size_mm": list(panel.size_mm),
-        "coating_srgb": res["coating_srgb"], "rust_pixel_count_pct": res["rust_pixel_count_pct"],
+        "coating_srgb": res["coating_srgb"], "coating_darker_than_rust": res["coating_darker_than_rust"],
+        "rust_pixel_count_pct": res["rust_pixel_count_pct"],
         "scribe_lines_mm": scribe.lines, "creep_stations": scribe.stations, "scribe_note": scribe.note,
         "rust_site_area_mm2": res["_rust"].site_area_mm2.tolist(),
         "settings": settings.to_dict(), "image_sha256": sha256,
@@ -451,8 +459,8 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
                 rows = [_empty_row(str(out.item), out.error)]
             by_image[str(out.item)] = rows
     ledger.flush()
-    for text in photo_warnings(rated_now):
-        warnings.warn(text, PhotoLimitWarning, stacklevel=1)
+    for text in limit_warnings(rated_now):
+        warnings.warn(text, RatingLimitWarning, stacklevel=1)
     all_rows = [r for rows in by_image.values() for r in rows]
     write_csv(table_path, pd.DataFrame(all_rows, columns=PANEL_COLUMNS))
     click.echo(f"table: {table_path}\ndatabase: {db}")

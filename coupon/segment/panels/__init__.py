@@ -88,6 +88,7 @@ def rate_panel(panel: RectifiedPanel, settings: PanelSettings, colour: ColourCor
         "rust_grade_written": written_grade(grade, letter),
         "ri_degree": rate("iso-4628-3", rust.rust_area_pct),
         "coating_srgb": [round(float(v), 4) for v in model.coating_srgb],
+        "coating_darker_than_rust": bool(model.coating_darker_than_rust),
         "scribe_found": scribe.found, "scribe_kind": scribe.kind, "scribe_stations": len(scribe.stations),
         "creep_mean_mm": creep_mean, "creep_max_mm": scribe.creep_max_mm, "creep_min_mm": scribe.creep_min_mm,
         "creep_left_mean_mm": left, "creep_right_mean_mm": right,

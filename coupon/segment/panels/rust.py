@@ -59,7 +59,7 @@ PEAK_FRACTION_SIGMA = 6.0
 
 #: Relative standard uncertainty of the unmixed rust area from the colour model (coupon's estimate).
 COLOUR_MODEL_REL_UNC = 0.10
-#: The same on a coating darker than most rust colours.  There a dim rust pixel looks like a partly
+#: The same on a coating darker than every rust colour but the darkest (the dark cores).  There a dim rust pixel looks like a partly
 #: covered pixel of brighter rust (the coating adds almost nothing to either), so the area follows how
 #: bright the rust is against the known rust colours: on synthetic trays (rust painted in colours of
 #: its own, not the unmixing's) spots and general rust on the dark coating read 0.77 to 0.89 of the
@@ -125,7 +125,8 @@ class ColourModel:
         given, it also promises that ``score`` is 0 wherever rust does not win, so that
         :func:`_grow_candidates` may look at these pixels alone.
     coating_darker_than_rust : bool
-        The coating is darker than most rust colours (then :data:`COLOUR_MODEL_REL_UNC_DARK` applies).
+        The coating is darker than every rust colour but the darkest (then :data:`COLOUR_MODEL_REL_UNC_DARK`
+        applies).
     """
 
     coating_linear: np.ndarray
@@ -544,8 +545,10 @@ def unmix(lin: np.ndarray, valid: np.ndarray, px_per_mm: float,
     # not on coatings darker than most rust colours (black, dark grey): there a speck's colour stays
     # large against the coating's noise even after subsampling and the per-pixel test finds it,
     # while the lightness test would add the JPEG ringing around the bright speck
-    darker = y_c <= float(np.median(rust_y))
-    pooled = k >= 3 and y_sig > 0 and not darker
+    pooled = k >= 3 and y_sig > 0 and y_c > float(np.median(rust_y))
+    # darker than every rust colour but the darkest (the dark cores): there the coating adds almost nothing
+    # to a rust pixel, and rust brightness and cover cannot be told apart (COLOUR_MODEL_REL_UNC_DARK)
+    darker = bool(y_c < np.sort(rust_y)[1]) if len(rust_y) > 1 else False
     half = k // 2
     neutral_dev = np.empty(shape, np.float32)
     fraction = np.empty(shape, np.float32)
