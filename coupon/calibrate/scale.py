@@ -266,8 +266,7 @@ def warp_perspective(src: np.ndarray, m: np.ndarray, out_wh: tuple[int, int], *,
     ipp = cv2.ipp.useIPP()
     cv2.ipp.setUseIPP(False)
     try:
-        if dst is None:
-            return cv2.warpPerspective(src, m, out_wh, flags=flags, borderMode=border, borderValue=border_value)
+        # dst=None: OpenCV allocates the output
         return cv2.warpPerspective(src, m, out_wh, dst=dst, flags=flags, borderMode=border, borderValue=border_value)
     finally:
         cv2.ipp.setUseIPP(ipp)

@@ -140,8 +140,10 @@ def limit_warnings(rows: list[dict]) -> list[str]:
     out = []
     low: dict[str, float] = {}
     chroma: dict[str, str] = {}
-    dark = [f"{Path(r['image']).name} {r['position']}" for r in rows if r.get("coating_darker_than_rust")]
+    dark: list[str] = []
     for r in rows:
+        if r.get("coating_darker_than_rust"):
+            dark.append(f"{Path(r['image']).name} {r['position']}")
         res = r.get("photo_px_per_mm")
         if isinstance(res, float) and np.isfinite(res) and res < PINPOINT_MIN_PHOTO_PX_PER_MM:
             low[r["image"]] = min(res, low.get(r["image"], np.inf))

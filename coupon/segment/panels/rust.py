@@ -59,11 +59,12 @@ PEAK_FRACTION_SIGMA = 6.0
 
 #: Relative standard uncertainty of the unmixed rust area from the colour model (coupon's estimate).
 COLOUR_MODEL_REL_UNC = 0.10
-#: The same on a coating darker than every rust colour but the darkest (the dark cores).  There a dim rust pixel looks like a partly
-#: covered pixel of brighter rust (the coating adds almost nothing to either), so the area follows how
-#: bright the rust is against the known rust colours: on synthetic trays (rust painted in colours of
-#: its own, not the unmixing's) spots and general rust on the dark coating read 0.77 to 0.89 of the
-#: truth at 4 to 11 px/mm, grey and white 0.93 to 1.07 (sixth session's study).
+#: The same on a coating darker than every rust colour but the darkest (the dark cores).  There a dim
+#: rust pixel looks like a partly covered pixel of brighter rust (the coating adds almost nothing to
+#: either), so the area follows how bright the rust is against the known rust colours: on synthetic
+#: trays (rust painted in colours of its own, not the unmixing's) spots and general rust on the dark
+#: coating read 0.77 to 0.89 of the truth at 4 to 11 px/mm, grey and white 0.93 to 1.07 (sixth
+#: session's study).
 COLOUR_MODEL_REL_UNC_DARK = 0.20
 
 #: Limits of pinpoint rust (specks of 0.12 to 0.25 mm radius) found in synthetic trays; the panels
