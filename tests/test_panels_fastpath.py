@@ -249,6 +249,7 @@ def tray_panels():
 
 def test_strip_unmix_matches_the_whole_panel_computation(tray_panels):
     # reference: the same model on whole-panel arrays (plain numpy and OpenCV, _unmix_whole_panel)
+    from coupon.segment.panels import rust as R
     from coupon.segment.panels.rust import RustSettings, measure_rust, unmix
 
     for panel, valid in tray_panels:
@@ -268,7 +269,15 @@ def test_strip_unmix_matches_the_whole_panel_computation(tray_panels):
         np.testing.assert_allclose(m.fraction[same], fraction[same], atol=1e-5)
         np.testing.assert_allclose(m.score[same], score[same], rtol=1e-4, atol=1e-3)
         assert m.noise_fraction == pytest.approx(noise, rel=1e-3)
-        ref = ColourModel(m.coating_linear, score, fraction, neutral_dev, light, wins, noise)
+        cone = None
+        if m.coating_darker_than_rust:
+            # the cone's fraction at every rust pixel (no pooled test on such coatings), whole-panel arrays;
+            # _cone_fraction itself is checked against scipy in tests/test_panels_unmix.py
+            wi = np.flatnonzero(wins)
+            pn = np.ascontiguousarray((panel.linear.reshape(-1, 3)[wi] / light.ravel()[wi, None]).T)
+            cone = (wi, R._cone_fraction(pn, m.coating_linear, [R._lin(e) for e in R.RUST_ENDMEMBERS_SRGB]))
+        ref = ColourModel(m.coating_linear, score, fraction, neutral_dev, light, wins, noise,
+                          coating_darker_than_rust=m.coating_darker_than_rust, cone_fraction=cone)
         a, b = measure_rust(m, valid, 10.0, RustSettings()), measure_rust(ref, valid, 10.0, RustSettings())
         assert a.rust_area_mm2 == pytest.approx(b.rust_area_mm2, rel=1e-3, abs=1e-3)
         assert abs(a.sites - b.sites) <= 1

@@ -187,12 +187,12 @@ def test_dense_pinpoint_at_7_px_per_mm_by_jpeg_chroma(coating, chroma):
     assert _rust_ok(res["rust_area_pct"], tr), (coating, chroma, res["rust_area_pct"], tr)
 
 
-# Spots and general rust at about 7.5 px/mm (issue 3 tolerance).  White and grey hold it; on the dark coating
-# both read 0.77 to 0.89 of the truth: a dim rust pixel there looks like a partly covered pixel of brighter rust
-# (COLOUR_MODEL_REL_UNC_DARK's notes), a known fault kept as a strict xfail.  Whatever the coating, the stated
-# uncertainty must cover the error: within 2.5 standard uncertainties of the truth.
-_DARK_BRIGHTNESS = pytest.mark.xfail(strict=True, reason="dark coating: spots and general read 0.77 to 0.89 x")
-_AT_7_PX = [(c, k) for c in ("white", "grey", "dark") for k in ("spots", "general")]
+# Spots, general rust and streaks at about 7.5 px/mm (issue 3 tolerance) on white, grey and dark coatings.  On
+# the dark coating a dim rust pixel looks like a partly covered pixel of brighter rust; the large sites there
+# take the cone's fraction (CONE_MIN_SITE_MM2's notes; with the segment's fraction alone dark spots and general
+# read 0.77 to 0.89 of the truth and failed).  Whatever the coating, the stated uncertainty must cover the
+# error: within 2.5 standard uncertainties of the truth.
+_AT_7_PX = [(c, k) for c in ("white", "grey", "dark") for k in ("spots", "general", "streaks")]
 
 
 @functools.lru_cache(maxsize=None)
@@ -204,9 +204,8 @@ def _rated_at_7_px_per_mm(coating: str, kind: str) -> tuple[float, float, float]
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("coating, kind", [pytest.param(c, k, marks=_DARK_BRIGHTNESS) if c == "dark" else (c, k)
-                                           for c, k in _AT_7_PX])
-def test_spots_and_general_at_7_px_per_mm(coating, kind):
+@pytest.mark.parametrize("coating, kind", _AT_7_PX)
+def test_spots_general_and_streaks_at_7_px_per_mm(coating, kind):
     measured, _, tr = _rated_at_7_px_per_mm(coating, kind)
     assert _rust_ok(measured, tr), (coating, kind, measured, tr)
 

@@ -165,7 +165,7 @@ def limit_warnings(rows: list[dict]) -> list[str]:
     if dark:
         named = ", ".join(dark[:3]) + (", ..." if len(dark) > 3 else "")
         out.append(f"{len(dark)} panel(s) on dark coatings, darker than the rust colours ({named}): their rust area "
-                   "reads low (spots and general rust 0.77 to 0.89 of the truth on synthetic trays) and their "
+                   "depends on how bright the rust is (0.83 to 1.22 times the truth on synthetic trays) and their "
                    "rust_area_pct_unc carries a 20 % colour-model term; compare them with panels of the same coating")
     return out
 
