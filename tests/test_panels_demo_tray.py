@@ -3,8 +3,11 @@
 Built exactly as ``coupon/demo_panels.py`` builds it (same systems, seed 301 and TraySettings).
 It held the failures that were fixed: a thin scribe on grey (0.2 mm creep) that the line search
 lost, so its rust counted as a 0.55 % false positive; and JPEG chroma blocks on a clean green panel
-rated as pinpoint rust.  Tolerances of issue 3: rust area within max(0.1 percentage points, 15 %
-relative) of the truth; ASTM D610 grade within one class; creep mean within 0.3 mm.
+rated as pinpoint rust; and, in the landscape 2600 x 2000 frame of earlier demos (3.1 px/mm on the
+panels), grey pinpoint rust under-measured by about half (R1C1: 0.0085 % against 0.036 % true, D610
+grade 10 against 8), which the portrait frame of ``TRAY_WH`` (4.7 px/mm) cures.  Tolerances of issue 3:
+rust area within max(0.1 percentage points, 15 % relative) of the truth; ASTM D610 grade within one
+class; creep mean within 0.3 mm.
 """
 
 from __future__ import annotations
@@ -12,7 +15,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from coupon.demo_panels import SYSTEMS
+from coupon.demo_panels import SYSTEMS, TRAY_WH
 from coupon.ratings.panel_ratings import rust_grade
 from coupon.segment.panels import PanelSettings, rate_panel
 from coupon.segment.panels.detect import find_panels, rectify_panel
@@ -35,7 +38,7 @@ def _specs(hours: float) -> list[PanelSpec]:
 @pytest.fixture(scope="module")
 def rated_demo_tray():
     img, truth = tray_scene(_specs(HOURS), seed=SEED,
-                            settings=TraySettings(image_wh=(2600, 2000), cols=3, plane_px_per_mm=8.0))
+                            settings=TraySettings(image_wh=TRAY_WH, cols=3, plane_px_per_mm=8.0))
     quads = find_panels(img)
     settings = PanelSettings()
     by_pos = {q.position: q for q in quads}
@@ -47,15 +50,10 @@ def rated_demo_tray():
 
 
 POSITIONS = [(r, c) for r in (1, 2, 3) for c in (1, 2, 3)]
-# grey pinpoint at 168 h: 0.0085 % measured against 0.036 % true (within 0.1 pp, but grade 10 against 8):
-# pinpoint rust on grey is under-measured by about half in these 3.1 px/mm photos (see the notes)
-_PINPOINT_GREY = pytest.mark.xfail(reason="R1C1 grey pinpoint: 0.0085 % vs truth 0.036 %, D610 grade 10 vs 8 "
-                                          "(pinpoint on grey under-measured by about half at 3.1 px/mm)")
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("position", [pytest.param(p, marks=_PINPOINT_GREY) if p == (1, 1) else p
-                                      for p in POSITIONS])
+@pytest.mark.parametrize("position", POSITIONS)
 def test_demo_tray_every_panel_within_tolerance(rated_demo_tray, position):
     quads, rated = rated_demo_tray
     assert len(quads) == 9
@@ -76,3 +74,34 @@ def test_demo_tray_thin_scribes_found_and_measured(rated_demo_tray):
         assert res["scribe_found"] and res["scribe_kind"] == "line", p["position"]
         assert np.isfinite(res["creep_mean_mm"])
         assert abs(res["creep_mean_mm"] - tc["creep_mean_mm"]) <= 0.3, (p["position"], res["creep_mean_mm"], tc)
+
+
+# The known weakness below 4 px/mm, kept in view: the same 168 h tray in the landscape 2600 x 2000 frame of
+# earlier demos puts the panels at about 3.1 px/mm, where pinpoint rust on grey reads about half the truth
+# (R1C1: 0.0085 % against 0.036 %).  Within 0.1 percentage points, so the area passes the issue's tolerance;
+# the D610 grade reads 10 against 8, two classes good: a strict xfail, so that a fix shows.
+@pytest.fixture(scope="module")
+def grey_pinpoint_at_3_px_per_mm():
+    img, truth = tray_scene(_specs(HOURS), seed=SEED,
+                            settings=TraySettings(image_wh=(2600, 2000), cols=3, plane_px_per_mm=8.0))
+    p = next(p for p in truth["panels"] if p["position"] == (1, 1))
+    q = next(q for q in find_panels(img) if q.position == (1, 1))
+    settings = PanelSettings()
+    panel = rectify_panel(img, q.corners_xy, settings.size_mm, settings.px_per_mm)
+    photo_px_per_mm = float(np.sqrt(q.area_px2 / (75 * 150)))
+    return photo_px_per_mm, rate_panel(panel, settings), truth_rust(p, edge_mm=5.0)["rust_area_pct"]
+
+
+@pytest.mark.slow
+def test_grey_pinpoint_at_3_px_per_mm_area_within_tolerance(grey_pinpoint_at_3_px_per_mm):
+    photo_px_per_mm, res, tr = grey_pinpoint_at_3_px_per_mm
+    assert photo_px_per_mm < 4  # below the limit the command warns about (coupon.cli.panels.limit_warnings)
+    assert abs(res["rust_area_pct"] - tr) <= max(0.1, 0.15 * tr), (res["rust_area_pct"], tr)
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(strict=True, reason="grey pinpoint at 3.1 px/mm reads about half the truth: D610 grade 10 vs 8")
+def test_grey_pinpoint_at_3_px_per_mm_grade_within_one_class(grey_pinpoint_at_3_px_per_mm):
+    _, res, tr = grey_pinpoint_at_3_px_per_mm
+    # ASTM D610-08 Table 1 grades (via coupon.ratings.scales): within one class
+    assert abs(int(res["rust_grade"]) - int(rust_grade(tr))) <= 1, (res["rust_grade"], rust_grade(tr))

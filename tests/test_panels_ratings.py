@@ -5,9 +5,17 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from coupon.ratings.panel_ratings import (MIX_MIN_SHARE, PINPOINT_MAX_MM2, SPOT_MAX_CELL_SHARE, SPOT_MAX_CLUSTERS,
-                                          SPOT_MIN_SHARE, distribution_letter, pinpoint_share, rust_grade,
-                                          written_grade)
+from coupon.ratings.panel_ratings import (
+    MIX_MIN_SHARE,
+    PINPOINT_MAX_MM2,
+    SPOT_MAX_CELL_SHARE,
+    SPOT_MAX_CLUSTERS,
+    SPOT_MIN_SHARE,
+    distribution_letter,
+    pinpoint_share,
+    rust_grade,
+    written_grade,
+)
 from coupon.ratings.scales import rate
 
 # ASTM D610-08 Table 1 (verified): grade -> upper bound of percent rusted (lower bound exclusive)
@@ -28,8 +36,8 @@ def test_astm_d610_boundaries(grade, upper):
 
 
 def test_astm_d610_ends():
-    assert rust_grade(0.0) == "10"  # ASTM D610-08 Table 1
-    assert rust_grade(50.01) == "0"
+    assert rust_grade(0.0) == "10"  # ASTM D610-08 Table 1: grade 10 is up to 0.01 %, no rust included
+    assert rust_grade(50.01) == "0"  # ASTM D610-08 Table 1: grade 0 is more than 50 %
     assert rust_grade(100.0) == "0"
 
 
@@ -43,6 +51,7 @@ def test_astm_d1654_boundaries(rating, upper):
 
 def test_astm_d1654_ends():
     assert rate("astm-d1654", 0.0) == "10"  # ASTM D1654: no creepage (secondary)
+    assert rate("astm-d1654", 0.01) == "9"  # ASTM D1654: 9 is more than 0 to 0.5 mm (secondary)
     assert rate("astm-d1654", 16.5) == "0"  # over 16 mm (secondary)
 
 
@@ -59,8 +68,17 @@ def test_iso_4628_3_picture_values(pct, ri):
 def test_iso_4628_3_cutoffs_between_pictures(lo, hi, ri_lo, ri_hi):
     # cut-offs are coupon's documented choice: geometric mean of neighbouring picture values
     g = float(np.sqrt(lo * hi))
+    assert rate("iso-4628-3", g) == ri_lo  # the cut-off itself belongs to the lower degree, as in D610
     assert rate("iso-4628-3", g * 0.99) == ri_lo
     assert rate("iso-4628-3", g * 1.01) == ri_hi
+
+
+def test_iso_4628_3_ri_0_up_to_one_hundredth_of_a_percent():
+    # Ri 0 (no rust) up to 0.01 %, the smallest area the ASTM D610-08 scale resolves (its grade 10): coupon's
+    # documented cut-off between Ri 0 (0 %) and Ri 1 (0.05 %, ISO 4628-3 picture value, secondary source)
+    assert rate("iso-4628-3", 0.0099) == "Ri 0"
+    assert rate("iso-4628-3", 0.01) == "Ri 0"
+    assert rate("iso-4628-3", 0.0101) == "Ri 1"
 
 
 def test_written_grade():
@@ -125,7 +143,7 @@ def _pin_and_spread(pin_mm2, big_mm2, pin_site_mm2=0.1):
 def test_mix_share_threshold(pin_pct, letter):
     # larger spots spread over the panel (G) mixed with pinpoint specks: H exactly when each part
     # carries at least 30 % of the rusted area (the 30 % boundary itself reads H)
-    assert MIX_MIN_SHARE == 0.30
+    assert MIX_MIN_SHARE == 0.30  # coupon's documented rule (panel_ratings); the cases below are built on it
     areas, cent = _pin_and_spread(pin_pct, 100.0 - pin_pct)
     assert pinpoint_share(areas) == pytest.approx(pin_pct / 100, abs=1e-9)
     assert distribution_letter(areas, cent, RATED, 10.0, "5") == letter
@@ -133,7 +151,7 @@ def test_mix_share_threshold(pin_pct, letter):
 
 def test_pinpoint_size_limit():
     # sites exactly at the limit are pinpoint; just above it they are larger sites
-    assert PINPOINT_MAX_MM2 == 0.8
+    assert PINPOINT_MAX_MM2 == 0.8  # coupon's documented rule (panel_ratings); the cases below are built on it
     areas, cent = _grid_sites(60, PINPOINT_MAX_MM2, 9.0, (8, 8))
     assert pinpoint_share(areas) == 1.0
     assert distribution_letter(areas, cent, RATED, 10.0, "5") == "P"
@@ -156,7 +174,7 @@ def test_merged_specks_and_a_few_false_sites_stay_pinpoint():
 def test_spot_cluster_share_threshold():
     # three tight clusters of spots carry the share s of the larger rust; the rest is spread
     # thinly over the panel (one 1 mm2 site per 12 mm cell)
-    assert (SPOT_MAX_CLUSTERS, SPOT_MIN_SHARE) == (3, 0.80)
+    assert (SPOT_MAX_CLUSTERS, SPOT_MIN_SHARE) == (3, 0.80)  # coupon's documented rule, the cases' basis
     spread_a, spread_c = _grid_sites(20, 1.0, 12.0, (11, 13))  # 20 mm2 spread (y 13 to 49 mm)
     clusters = [(30.0, 90.0), (55.0, 110.0), (25.0, 135.0)]  # more than CLUSTER_MM from every spread site
 
@@ -173,7 +191,7 @@ def test_spot_cluster_share_threshold():
 
 def test_spot_needs_few_cells():
     # three large clusters carry 90 % but rust touches more than 25 % of the 10 mm cells: G
-    assert SPOT_MAX_CELL_SHARE == 0.25
+    assert SPOT_MAX_CELL_SHARE == 0.25  # coupon's documented rule (panel_ratings), the case's basis
     spread_a, spread_c = _grid_sites(36, 1.0, 10.5, (6, 6))  # 36 of the 113 cells touched (y 6 to 59 mm)
     a = np.r_[spread_a, np.full(3, 108.0)]
     c = np.r_[spread_c, [[30.0, 90.0], [55.0, 110.0], [25.0, 135.0]]]

@@ -8,6 +8,7 @@ within 0.3 mm; rectified area within 1 % of the nominal size.
 from __future__ import annotations
 
 import functools
+
 import cv2
 import numpy as np
 import pytest
@@ -17,7 +18,13 @@ from coupon.calibrate.scale import quad_area_px2
 from coupon.ratings.panel_ratings import rust_grade
 from coupon.segment.panels import PanelSettings, rate_panel
 from coupon.segment.panels.detect import find_panels, read_qr_codes, rectify_panel
-from coupon.synth.panels import PanelSpec, TraySettings, tray_scene, truth_creep, truth_rust
+from coupon.synth.panels import (
+    PanelSpec,
+    TraySettings,
+    tray_scene,
+    truth_creep,
+    truth_rust,
+)
 
 TRAY_A = [
     PanelSpec("white", ("spots",), scribe="line", creep_mm=2.0, qr_text="BW-1-A"),
@@ -54,6 +61,13 @@ def rated_a(tray_a):
     return out, qr
 
 
+def _only_panel(img):
+    """The one panel of a one-panel tray (every panel found, and nothing else)."""
+    quads = find_panels(img)
+    assert len(quads) == 1, len(quads)
+    return quads[0]
+
+
 def _rust_ok(measured_pct, truth_pct):
     # issue 3 tolerance: max(0.1 percentage points, 15 % relative)
     return abs(measured_pct - truth_pct) <= max(0.1, 0.15 * truth_pct)
@@ -70,12 +84,36 @@ def test_every_panel_found_in_tray_order(tray_a):
 
 
 @pytest.mark.slow
-def test_rectified_area_within_one_percent_of_nominal(tray_a):
+def test_detected_corners_enclose_the_nominal_area(tray_a):
     img, truth, quads = tray_a
     for q, p in zip(quads, truth["panels"]):
         # detected corners taken to the panel plane by the true camera: nominal 75 x 150 mm
         mm = cv2.perspectiveTransform(q.corners_xy.reshape(-1, 1, 2), np.linalg.inv(p["hom_mm_to_img"]))
         assert quad_area_px2(mm.reshape(-1, 2)) == pytest.approx(75 * 150, rel=0.01)
+
+
+@pytest.mark.slow
+def test_rectified_area_within_one_percent_of_nominal(tray_a):
+    # the rectifier's own homography (photo px -> panel mm) applied to the panel's true corners in the photo:
+    # the area they enclose on the mm grid against the analytic area of the nominal rectangle, 75 x 150 mm
+    # (shoelace formula in numpy, not the package's quad_area_px2)
+    img, truth, quads = tray_a
+    settings = PanelSettings()
+    for q, p in zip(quads, truth["panels"]):
+        panel = rectify_panel(img, q.corners_xy, settings.size_mm, settings.px_per_mm)
+        true_px = p["corners_img_xy"].reshape(-1, 1, 2)
+        mm = cv2.perspectiveTransform(true_px, panel.scale.homography).reshape(-1, 2)
+        x, y = mm[:, 0], mm[:, 1]
+        area = 0.5 * abs(np.dot(x, np.roll(y, -1)) - np.dot(y, np.roll(x, -1)))
+        assert area == pytest.approx(75 * 150, rel=0.01), (p["position"], area)
+        # each true corner lands on its corner of the grid (TL, TR, BR, BL; within 0.5 mm), the panel as it stands
+        w, h = p["size_mm"]
+        assert tuple(panel.size_mm) == pytest.approx((w, h))
+        assert np.max(np.abs(mm - [[0, 0], [w, 0], [w, h], [0, h]])) < 0.5, (p["position"], mm)
+        # and the grid holds the nominal size at the grid resolution (portrait: 75 mm across, 150 mm down)
+        rows, cols = panel.linear.shape[:2]
+        assert rows * cols / settings.px_per_mm ** 2 == pytest.approx(75 * 150, rel=0.01)
+        assert sorted(panel.size_mm) == [75, 150]
 
 
 @pytest.mark.slow
@@ -97,7 +135,8 @@ def test_rust_area_grade_and_creep_within_tolerance(rated_a):
         assert _rust_ok(res["rust_area_pct"], tr["rust_area_pct"]), (name, res["rust_area_pct"], tr)
         true_grade = int(rust_grade(tr["rust_area_pct"]))
         assert abs(int(res["rust_grade"]) - true_grade) <= 1, name
-        assert res["rust_area_pct_unc"] > 0
+        # stated, and not so wide that it says nothing against the tolerance
+        assert 0 < res["rust_area_pct_unc"] <= 2 * max(0.1, 0.15 * tr["rust_area_pct"]), name
         tc = truth_creep(p)
         assert res["scribe_found"] == (tc is not None), name
         if tc is not None:
@@ -157,7 +196,7 @@ def test_distribution_letter_of_pinpoint_spots_general(coating, seed):
 def test_pinpoint_on_grey_and_dark_coatings(coating, seed):
     img, truth = tray_scene([PanelSpec(coating, ("pinpoint",))], seed=seed,
                             settings=TraySettings(image_wh=(700, 1000), cols=1))
-    q = find_panels(img)[0]
+    q = _only_panel(img)
     res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
     tr = truth_rust(truth["panels"][0], 5.0)["rust_area_pct"]
     assert _rust_ok(res["rust_area_pct"], tr), (coating, seed, res["rust_area_pct"], tr)
@@ -180,7 +219,7 @@ def test_dense_pinpoint_at_7_px_per_mm_by_jpeg_chroma(coating, chroma):
     img, truth = tray_scene([PanelSpec(coating, ("pinpoint",), amount=3.0)], seed=3,
                             settings=TraySettings(image_wh=(1100, 1900), cols=1, plane_px_per_mm=24.0,
                                                   jpeg_chroma=chroma))
-    q = find_panels(img)[0]
+    q = _only_panel(img)
     res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
     tr = truth_rust(truth["panels"][0], 5.0)["rust_area_pct"]
     assert tr > 0.9  # dense enough for the relative tolerance to apply (15 % of 0.9 % > 0.1 pp)
@@ -191,14 +230,14 @@ def test_dense_pinpoint_at_7_px_per_mm_by_jpeg_chroma(coating, chroma):
 # the dark coating a dim rust pixel looks like a partly covered pixel of brighter rust; the large sites there
 # take the cone's fraction (CONE_MIN_SITE_MM2's notes; with the segment's fraction alone dark spots and general
 # read 0.77 to 0.89 of the truth and failed).  Whatever the coating, the stated uncertainty must cover the
-# error: within 2.5 standard uncertainties of the truth.
+# error (within 2 standard uncertainties of the truth) without being wider than twice the tolerance.
 _AT_7_PX = [(c, k) for c in ("white", "grey", "dark") for k in ("spots", "general", "streaks")]
 
 
 @functools.lru_cache(maxsize=None)
 def _rated_at_7_px_per_mm(coating: str, kind: str) -> tuple[float, float, float]:
     img, truth = tray_scene([PanelSpec(coating, (kind,))], seed=4, settings=TraySettings(image_wh=(1100, 1900), cols=1))
-    q = find_panels(img)[0]
+    q = _only_panel(img)
     res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
     return res["rust_area_pct"], res["rust_area_pct_unc"], truth_rust(truth["panels"][0], 5.0)["rust_area_pct"]
 
@@ -214,7 +253,11 @@ def test_spots_general_and_streaks_at_7_px_per_mm(coating, kind):
 @pytest.mark.parametrize("coating, kind", _AT_7_PX)
 def test_stated_rust_uncertainty_covers_the_error_at_7_px_per_mm(coating, kind):
     measured, unc, tr = _rated_at_7_px_per_mm(coating, kind)
-    assert abs(measured - tr) <= 2.5 * unc, (coating, kind, measured, unc, tr)
+    # coverage factor k = 2 (about 95 %; the usual expanded uncertainty of the GUM, common practice)
+    assert abs(measured - tr) <= 2 * unc, (coating, kind, measured, unc, tr)
+    # and informative: the standard uncertainty is at most twice the issue's tolerance (a wider one would
+    # cover any error and say nothing; today 0.3 to 0.7 of it on white and grey, 0.8 to 1.3 on dark)
+    assert unc <= 2 * max(0.1, 0.15 * tr), (coating, kind, unc, tr)
 
 
 def test_grey_dirt_is_not_rust_for_the_lightness_test():
@@ -222,7 +265,7 @@ def test_grey_dirt_is_not_rust_for_the_lightness_test():
     # (ASTM D610-08: dirt is not rust)
     img, _ = tray_scene([PanelSpec("grey", (), dirt=True)], seed=16,
                         settings=TraySettings(image_wh=(700, 1000), cols=1))
-    q = find_panels(img)[0]
+    q = _only_panel(img)
     res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
     assert res["rust_area_pct"] < 0.03, res["rust_area_pct"]
 
@@ -231,7 +274,7 @@ def test_pinpoint_without_jpeg_on_dark_coating():
     # without the codec the sub-pixel fractions recover pinpoint rust on a dark coating
     img, truth = tray_scene([PanelSpec("dark", ("pinpoint",))], seed=12,
                             settings=TraySettings(image_wh=(700, 1000), cols=1, jpeg_quality=None))
-    q = find_panels(img)[0]
+    q = _only_panel(img)
     res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
     tr = truth_rust(truth["panels"][0], 5.0)
     assert _rust_ok(res["rust_area_pct"], tr["rust_area_pct"]), (res["rust_area_pct"], tr)
@@ -239,12 +282,32 @@ def test_pinpoint_without_jpeg_on_dark_coating():
     assert res["rust_pixel_count_pct"] > 1.5 * tr["rust_area_pct"]
 
 
-def test_clean_panel_rates_10():
+def test_clean_panel_with_dirt_and_glare_rates_within_one_class_of_10():
     img, truth = tray_scene([PanelSpec("white", (), dirt=True, glare=True)], seed=13,
                             settings=TraySettings(image_wh=(700, 1000), cols=1))
-    q = find_panels(img)[0]
+    q = _only_panel(img)
     res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
-    # dirt and glare are not rust (ASTM D610-08: dirt and deposits are not rust)
+    # dirt and glare are not rust (ASTM D610-08: rust staining, dirt and deposits are not rust); truth 0 %, grade
+    # 10, and the issue allows one class
     assert res["rust_area_pct"] < 0.03
     assert int(res["rust_grade"]) >= 9
     assert not res["scribe_found"]
+
+
+# Grades across the scale (tray A covers grades 5 and 6 only): very light pinpoint rust (true grades 9 and 8)
+# and heavy general rust (4, and 2 on the edge of 3), one panel each at about 7.5 px/mm, issue 3 tolerances
+# against ASTM D610-08 Table 1 (via coupon.ratings.scales).
+@pytest.mark.slow
+@pytest.mark.parametrize("coating, kind, amount, true_grade", [("white", "pinpoint", 0.04, "9"),
+                                                               ("grey", "pinpoint", 0.1, "8"),
+                                                               ("white", "general", 3.0, "4"),
+                                                               ("green", "general", 10.0, "2")])
+def test_grades_across_the_scale(coating, kind, amount, true_grade):
+    img, truth = tray_scene([PanelSpec(coating, (kind,), amount=amount)], seed=21,
+                            settings=TraySettings(image_wh=(1100, 1900), cols=1))
+    q = _only_panel(img)
+    res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
+    tr = truth_rust(truth["panels"][0], 5.0)["rust_area_pct"]
+    assert rust_grade(tr) == true_grade  # the scene lies in the grade it was made for
+    assert _rust_ok(res["rust_area_pct"], tr), (coating, kind, res["rust_area_pct"], tr)
+    assert abs(int(res["rust_grade"]) - int(true_grade)) <= 1, (coating, kind, res["rust_grade"], true_grade)
