@@ -38,3 +38,14 @@ def test_pool_preload_module_imports_and_sets_one_thread():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split()
     assert out == ["1", "True"]
 
+
+
+def test_a_command_that_ends_at_once_exits_with_its_own_code(tmp_path):
+    # a real interpreter shutdown (CliRunner never shuts down): with nothing to rate the command ends while
+    # the warm-up thread may still be inside OpenCV; it used to abort there with exit code 134
+    code = "import sys; from coupon.cli.main import main; sys.argv = ['coupon'] + sys.argv[1:]; main()"
+    for _ in range(3):
+        res = subprocess.run([sys.executable, "-c", code, "panels", str(tmp_path / "missing.jpg"), "--out",
+                              str(tmp_path / "out")], capture_output=True, text=True)
+        assert res.returncode == 1, (res.returncode, res.stderr)
+        assert "file not found" in res.stderr and "terminate called" not in res.stderr

@@ -38,7 +38,12 @@ def warm_opencv() -> None:
 
 
 def warm_in_background() -> threading.Thread:
-    """Start :func:`warm_opencv` on a daemon thread and return the thread."""
-    t = threading.Thread(target=warm_opencv, name="coupon-warmup", daemon=True)
+    """Start :func:`warm_opencv` on a helper thread and return the thread.
+
+    Not a daemon thread: a command that ends at once (nothing left to rate, a bad option) waits the
+    tenth of a second for it.  A daemon thread still inside OpenCV's table build when the interpreter
+    shut down aborted the process ("terminate called without an active exception", exit code 134).
+    """
+    t = threading.Thread(target=warm_opencv, name="coupon-warmup", daemon=False)
     t.start()
     return t
