@@ -12,6 +12,8 @@ import functools
 import cv2
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import ndimage as ndi
 
 from coupon.calibrate.scale import quad_area_px2
@@ -81,6 +83,42 @@ def test_every_panel_found_in_tray_order(tray_a):
         assert q.position == p["position"]
         assert q.touches is None
         assert np.max(np.linalg.norm(q.corners_xy - p["corners_img_xy"], axis=1)) < 1.5
+
+
+@pytest.mark.slow
+def test_an_empty_slot_keeps_the_other_panels_positions(tray_a):
+    # a panel taken off the tray: the panels beside the gap keep their row and column (they used to be
+    # numbered by rank within the row, so the panel right of the gap took the missing panel's ID)
+    from coupon.segment.panels.detect import assign_positions
+
+    img, truth, quads = tray_a
+    for k in range(len(quads)):
+        rest = [q for i, q in enumerate(quads) if i != k]
+        assert [q.position for q in assign_positions(rest)] == [q.position for q in rest], k
+
+
+@given(roll=st.floats(-12, 12), drop=st.sets(st.integers(0, 11), max_size=4), seed=st.integers(0, 99))
+@settings(max_examples=60, deadline=None)
+def test_positions_of_a_rolled_grid_with_empty_slots(roll, drop, seed):
+    # synthetic ground truth: a 3 x 4 grid of 75 x 150 panels 25 mm apart (4 px/mm), rolled and jittered a
+    # little; any slots may be empty as long as every row and every column keeps a panel
+    from coupon.segment.panels.detect import PanelQuad, assign_positions
+
+    keep = [i for i in range(12) if i not in drop]
+    if {i // 4 for i in keep} != {0, 1, 2} or {i % 4 for i in keep} != {0, 1, 2, 3}:
+        return
+    rng = np.random.default_rng(seed)
+    a = np.deg2rad(roll)
+    rot = np.array([[np.cos(a), -np.sin(a)], [np.sin(a), np.cos(a)]])
+    quads, want = [], []
+    for i in keep:
+        r, c = divmod(i, 4)
+        x0, y0 = 25 + c * 100 + rng.uniform(-3, 3), 25 + r * 175 + rng.uniform(-3, 3)
+        rect = np.array([[x0, y0], [x0 + 75, y0], [x0 + 75, y0 + 150], [x0, y0 + 150]])
+        quads.append(PanelQuad((rect @ rot.T) * 4.0 + 1000, None, 1.0))
+        want.append((r + 1, c + 1))
+    got = {tuple(np.round(q.centre_xy, 6)): q.position for q in assign_positions(quads)}
+    assert [got[tuple(np.round(q.centre_xy, 6))] for q in quads] == want
 
 
 @pytest.mark.slow

@@ -285,24 +285,49 @@ def _refine_quad(rgb: np.ndarray, quad_xy: np.ndarray, reach_px: float) -> np.nd
     return corners
 
 
+def _group_1d(values: np.ndarray, reach: float) -> np.ndarray:
+    """Group numbers along a line: in ascending order, a value joins the current group when it lies
+    within ``reach`` of the group's mean, else it starts the next one.  Returns each value's group
+    number (0, 1, ...), in ascending order of the values."""
+    order = np.argsort(values, kind="stable")
+    group = np.empty(values.size, int)
+    members: list[int] = []
+    g = -1
+    for i in order:
+        if not members or values[i] - np.mean(values[members]) >= reach:
+            g += 1
+            members = []
+        members.append(i)
+        group[i] = g
+    return group
+
+
 def assign_positions(quads: list[PanelQuad]) -> list[PanelQuad]:
-    """Row and column of each panel from its centre: rows top to bottom, columns left to right."""
+    """Row and column of each panel from its centre: rows top to bottom, columns left to right.
+
+    Rows and columns are the tray's: the centres are turned by the panels' mean roll (the direction
+    of their top and bottom sides), then grouped along each axis over the whole tray.  A column
+    therefore keeps its number in a row where a slot is empty (the panels to the right of a gap are
+    not moved left); only a column empty in every row cannot be seen.
+    """
     if not quads:
         return []
     centres = np.array([q.centre_xy for q in quads])
+    widths = np.array([q.sides_px()[0] for q in quads])
     heights = np.array([q.sides_px()[1] for q in quads])
-    order = np.argsort(centres[:, 1])
-    rows: list[list[int]] = []
-    for i in order:
-        if rows and centres[i, 1] - np.mean(centres[rows[-1], 1]) < 0.5 * np.median(heights):
-            rows[-1].append(i)
-        else:
-            rows.append([i])
-    out = [None] * len(quads)
-    for r, members in enumerate(rows, start=1):
-        for c, i in enumerate(sorted(members, key=lambda j: centres[j, 0]), start=1):
-            q = quads[i]
-            out[i] = PanelQuad(q.corners_xy, q.touches, q.fill_ratio, (r, c))
+    axis = np.zeros(2)
+    for q in quads:
+        c = q.corners_xy
+        for a, b in ((c[0], c[1]), (c[3], c[2])):  # TL -> TR, BL -> BR
+            axis += (b - a) / max(np.linalg.norm(b - a), 1e-9)
+    ang = float(np.arctan2(axis[1], axis[0]))
+    cos, sin = np.cos(-ang), np.sin(-ang)
+    x = centres[:, 0] * cos - centres[:, 1] * sin
+    y = centres[:, 0] * sin + centres[:, 1] * cos
+    rows = _group_1d(y, 0.5 * float(np.median(heights)))
+    cols = _group_1d(x, 0.5 * float(np.median(widths)))
+    out = [PanelQuad(q.corners_xy, q.touches, q.fill_ratio, (int(rows[i]) + 1, int(cols[i]) + 1))
+           for i, q in enumerate(quads)]
     return sorted(out, key=lambda q: q.position)
 
 
