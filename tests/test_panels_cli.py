@@ -215,3 +215,59 @@ def test_limit_warnings_name_the_lowest_resolution_the_chroma_and_dark_coatings(
     assert chroma.startswith("1 photo(s) are JPEGs with 4:2:0 chroma subsampling")
     assert dark.startswith("1 panel(s) on dark coatings, darker than the rust colours (t2.jpg R1C2)")
     assert limit_warnings(rows[:1] + rows[3:]) == []  # 4:4:4 at 7.2 px/mm and a PNG: nothing to say
+
+
+def test_layout_naming_a_panel_id_twice(runner, tmp_path):
+    # two positions with one ID would write one overlay and one JSON for two panels
+    layout = tmp_path / "layout.csv"
+    layout.write_text("row,col,panel_id\n1,1,C-01\n1,2,C-02\n2,1,C-01\n")
+    img = tmp_path / "a.png"
+    img.write_bytes(b"")
+    res = invoke(runner, ["panels", img, "--out", tmp_path / "out", "--layout", layout])
+    assert res.exit_code == 2 and "panel_id 'C-01' is named twice (lines 2 and 4)" in res.output
+
+
+def test_manifest_refuses_negative_and_conflicting_hours(runner, tmp_path):
+    img = tmp_path / "a.png"
+    img.write_bytes(b"")
+    man = tmp_path / "m.csv"
+    man.write_text("image,exposure_h\na.png,-3\n")
+    res = invoke(runner, ["panels", img, "--out", tmp_path / "out", "--manifest", man])
+    assert res.exit_code == 2 and "line 2: exposure_h of a.png is -3" in res.output
+    man.write_text("image,exposure_h\na.png,168\nb.png,5\nsub/a.png,336\n")
+    res = invoke(runner, ["panels", img, "--out", tmp_path / "out", "--manifest", man])
+    assert res.exit_code == 2 and "line 4: a.png is listed again with another exposure_h (168 and 336 h)" in res.output
+
+
+def test_empty_folder_and_an_edge_band_that_leaves_nothing(runner, tmp_path):
+    (tmp_path / "empty").mkdir()
+    res = invoke(runner, ["panels", tmp_path / "empty", "--out", tmp_path / "out"])
+    assert res.exit_code == 2 and "no image files in" in res.output and ".jpg" in res.output
+    res = invoke(runner, ["panels", tmp_path / "x.jpg", "--out", tmp_path / "out", "--edge-mm", "40"])
+    assert res.exit_code == 2 and "leaves nothing of a 75x150 mm panel to rate; give less than 37.5 mm" in res.output
+
+
+@pytest.mark.slow
+def test_same_file_name_in_two_folders_and_a_path_typed_another_way(runner, tray_file, tmp_path, monkeypatch):
+    import shutil
+    from pathlib import Path
+
+    path, _ = tray_file
+    for d in ("dayA", "dayB"):
+        (tmp_path / d).mkdir()
+    a = shutil.copy(path, tmp_path / "dayA" / "tray_0168h.jpg")
+    # another photo under the same name: a different file (one byte of JPEG comment changes its hash)
+    data = path.read_bytes()
+    (tmp_path / "dayB" / "tray_0168h.jpg").write_bytes(data[:2] + b"\xff\xfe\x00\x03B" + data[2:])
+    out = tmp_path / "out"
+    res = invoke(runner, ["panels", a, tmp_path / "dayB" / "tray_0168h.jpg", "--out", out])
+    assert res.exit_code == 0, res.output
+    table = pd.read_csv(out / "panels.csv")
+    assert len(table) == 4 and table["json"].nunique() == 4 and table["overlay"].nunique() == 4
+    for _, r in table.iterrows():  # each JSON belongs to its own image
+        assert json.loads(Path(r["json"]).read_text())["image"] == r["image"]
+    # the same image typed relative to another folder: already rated, no second set of rows
+    monkeypatch.chdir(tmp_path / "dayA")
+    res = invoke(runner, ["panels", "tray_0168h.jpg", "--out", out])
+    assert res.exit_code == 0 and "already rated" in res.output
+    assert len(pd.read_csv(out / "panels.csv")) == 4

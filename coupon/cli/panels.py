@@ -31,6 +31,7 @@ from coupon.io.atomic import write_csv, write_json
 from coupon.io.batch import Prefetch, ResumeLedger, run_batch, settings_hash
 from coupon.io.images import (
     DEFAULT_MAX_PIXELS,
+    IMAGE_SUFFIXES,
     LoadedImage,
     expand_image_paths,
     file_sha256,
@@ -86,6 +87,7 @@ def read_layout(path: Path) -> dict[tuple[int, int], dict]:
                                  f"replicate), got {sorted(rows[0]) if rows else 'no rows'}", param_hint="--layout")
     out: dict[tuple[int, int], dict] = {}
     first_line: dict[tuple[int, int], int] = {}
+    id_line: dict[str, int] = {}
     for line, r in enumerate(rows, start=2):
         try:
             pos = (int(r["row"]), int(r["col"]))
@@ -97,7 +99,16 @@ def read_layout(path: Path) -> dict[tuple[int, int], dict]:
                                      f"{first_line[pos]} and {line}); each position may appear once",
                                      param_hint="--layout")
         first_line[pos] = line
-        out[pos] = {"panel_id": str(r["panel_id"]).strip(), "system": str(r.get("system") or "").strip(),
+        pid = str(r["panel_id"] or "").strip()
+        if not pid:
+            raise click.BadParameter(f"{path} line {line}: panel_id is empty; give every position an ID",
+                                     param_hint="--layout")
+        if pid in id_line:
+            raise click.BadParameter(f"{path}: panel_id {pid!r} is named twice (lines {id_line[pid]} and {line}); "
+                                     "each panel needs its own ID (its rows and files are named by it)",
+                                     param_hint="--layout")
+        id_line[pid] = line
+        out[pos] = {"panel_id": pid, "system": str(r.get("system") or "").strip(),
                     "replicate": str(r.get("replicate") or "").strip()}
     return out
 
@@ -114,7 +125,17 @@ def read_manifest(path: Path) -> dict[str, float]:
         hours = numeric_columns(table, ["exposure_h"], "manifest", path)["exposure_h"]
     except CouponError as exc:
         raise click.BadParameter(str(exc), param_hint="--manifest") from None
-    return {Path(str(i)).name: float(h) for i, h in zip(table["image"], hours)}
+    out: dict[str, float] = {}
+    for line, (i, h) in enumerate(zip(table["image"], hours), start=2):
+        name = Path(str(i)).name
+        if h < 0:
+            raise click.BadParameter(f"{path} line {line}: exposure_h of {name} is {h:g}; exposure times are 0 or "
+                                     "more hours", param_hint="--manifest")
+        if name in out and out[name] != h:
+            raise click.BadParameter(f"{path} line {line}: {name} is listed again with another exposure_h "
+                                     f"({out[name]:g} and {h:g} h); list each image once", param_hint="--manifest")
+        out[name] = float(h)
+    return out
 
 
 def parse_mask(text: str) -> tuple:
@@ -170,6 +191,23 @@ def limit_warnings(rows: list[dict]) -> list[str]:
     return out
 
 
+def output_names(paths: list[Path], previous: list[str], shas: dict[str, str]) -> dict[str, str]:
+    """The stem of each image's output files (``<stem>_<panel_id>.png`` and ``.json``).
+
+    An image's own file stem, or ``<stem>_<first 8 hex digits of its SHA-256>`` when another image of
+    this run, or one rated into the folder before (``previous``, the images of panels.csv), has the
+    same stem: ``dayA/tray_0168h.jpg`` and ``dayB/tray_0168h.jpg`` must not write each other's files.
+    """
+    seen: dict[str, set[str]] = {}
+    for img in [str(p) for p in paths] + [str(x) for x in previous]:
+        seen.setdefault(Path(img).stem, set()).add(ResumeLedger.key(img))
+    out = {}
+    for p in paths:
+        sha = shas.get(str(p), "")
+        out[str(p)] = f"{p.stem}_{sha[:8]}" if len(seen[p.stem]) > 1 and sha else p.stem
+    return out
+
+
 def _safe(text: str) -> str:
     return re.sub(r"[^A-Za-z0-9._-]+", "_", text).strip("_") or "panel"
 
@@ -200,8 +238,12 @@ def panel_threads() -> int:
 
 def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out_dir: Path,
                layout: dict | None = None, exposure_h: float | None = None,
-               max_pixels: int = DEFAULT_MAX_PIXELS, img: LoadedImage | None = None) -> list[dict]:
+               max_pixels: int = DEFAULT_MAX_PIXELS, img: LoadedImage | None = None,
+               name: str | None = None) -> list[dict]:
     """Rate every panel in one tray photo; write its overlays and JSON files; return the CSV rows.
+
+    The files are ``<name>_<panel_id>`` in ``out_dir`` (``name``: the photo's file stem unless given,
+    see :func:`output_names`).
 
     The panels are rated on :func:`panel_threads` threads; the rows come back in tray order.
     ``img``: the photo already loaded (by a :class:`~coupon.io.batch.Prefetch`), or None to load it here.
@@ -227,7 +269,7 @@ def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out
 
     def one(i: int) -> dict:
         return _rate_quad(path, img.sha256, pixels, quads[i], qr.get(i), settings, profile, out_dir, layout,
-                          exposure_h, px_scale, median_area, img.chroma_subsampling or "")
+                          exposure_h, px_scale, median_area, img.chroma_subsampling or "", name or path.stem)
 
     threads = min(panel_threads(), len(quads))
     if threads <= 1:
@@ -238,7 +280,7 @@ def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out
 
 def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings: PanelSettings,
                profile: Profile | None, out_dir: Path, layout: dict | None, exposure_h: float | None,
-               px_scale: float | None, median_area: float | None, chroma: str = "") -> dict:
+               px_scale: float | None, median_area: float | None, chroma: str = "", name: str = "") -> dict:
     """The CSV row of one found panel (rectify, rate, overlay, JSON); ``qr_hit`` is (text, corners) or None."""
     r, c = q.position
     ident = {"panel_id": f"R{r}C{c}", "id_source": "position", "system": "", "replicate": ""}
@@ -274,7 +316,7 @@ def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings:
         if np.all(hi > 0) and np.all(lo < panel.size_mm):
             boxes.append((lo[0], lo[1], hi[0], hi[1]))
     res = rate_panel(panel, settings, profile.colour if profile is not None else None, boxes)
-    stem = f"{path.stem}_{_safe(row['panel_id'])}"
+    stem = f"{name or path.stem}_{_safe(row['panel_id'])}"
     overlay = out_dir / "overlays" / f"{stem}.png"
     title = (f"{row['panel_id']} {row['position']}  rust {res['rust_area_pct']:.2f} %  "
              f"D610 {res['rust_grade_written']}  {res['ri_degree']}")
@@ -320,6 +362,7 @@ class PanelsJob:
     hours: float | None
     manifest: dict | None
     max_pixels: int
+    names: dict[str, str] | None = None  # image -> stem of its output files (output_names)
 
     def exposure_for(self, path: Path) -> float | None:
         if self.manifest is not None and path.name in self.manifest:
@@ -330,7 +373,7 @@ class PanelsJob:
 
     def __call__(self, path: Path, img: LoadedImage | None = None) -> list[dict]:
         return rate_image(path, self.settings, self.profile, self.out_dir, self.layout, self.exposure_for(path),
-                          self.max_pixels, img)
+                          self.max_pixels, img, (self.names or {}).get(str(path)))
 
     def load(self, path: Path) -> LoadedImage:
         return load_image(path, max_pixels=self.max_pixels)
@@ -387,6 +430,9 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
     standard or specification.
     """
     size = parse_size(panel_size, "--panel-size")
+    if 2 * edge_mm >= min(size):
+        raise click.BadParameter(f"{edge_mm:g} mm along every edge leaves nothing of a {size[0]:g}x{size[1]:g} mm "
+                                 f"panel to rate; give less than {min(size) / 2:g} mm", param_hint="--edge-mm")
     if workers <= 1:
         warm_in_background()  # OpenCV's tables, built while the images are hashed and the first one decoded
     mask_specs = tuple(parse_mask(m) for m in masks)
@@ -405,6 +451,9 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
     )
     out_dir.mkdir(parents=True, exist_ok=True)
     paths = expand_image_paths(list(images))
+    if not paths:
+        raise click.BadParameter(f"no image files in {', '.join(map(str, images))} (looked for "
+                                 f"{', '.join(sorted(IMAGE_SUFFIXES))})", param_hint="IMAGES")
     digest = settings_hash({"settings": settings.to_dict(), "profile": profile.sha256 if profile else None,
                             "layout": layout and {f"{k}": v for k, v in layout.items()}, "hours": hours,
                             "manifest": manifest, "command": "panels", "version": 1})
@@ -412,23 +461,26 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
     table_path = out_dir / "panels.csv"
     old = read_previous(table_path, PANEL_COLUMNS, dtype={"panel_id": str})
     by_image: dict[str, list[dict]] = {}
-    for rec in old.to_dict("records"):
-        by_image.setdefault(str(rec["image"]), []).append(rec)
+    for rec in old.to_dict("records"):  # keyed by the resolved path: a rerun may type the path another way
+        by_image.setdefault(ResumeLedger.key(rec["image"]), []).append(rec)
     from coupon.campaign.store import is_recorded, resolve_db_path
 
     db = resolve_db_path(out_dir, db_path)
     db_settings = {"settings": settings.to_dict(), "layout": str(layout_path) if layout_path else None}
     profile_sha = profile.sha256 if profile else None
-    job = PanelsJob(settings, profile, out_dir, layout, hours, manifest, int(max_megapixels * 1e6))
+    shas = {str(p): try_sha256(p) for p in paths}
+    names = output_names(paths, [r["image"] for rows in by_image.values() for r in rows], shas)
+    job = PanelsJob(settings, profile, out_dir, layout, hours, manifest, int(max_megapixels * 1e6), names)
     failed = 0
-    todo, shas = [], {}
+    todo = []
     for p in paths:
-        sha = shas[str(p)] = try_sha256(p)
-        if not force and sha and ledger.is_done(p, sha, digest) and str(p) in by_image:
+        sha = shas[str(p)]
+        if not force and sha and ledger.is_done(p, sha, digest) and ResumeLedger.key(p) in by_image:
             click.echo(f"{p}: already rated (use --force to redo)")
             if not is_recorded(db, "panels", p, sha):  # a database added after the first run gets every image
                 failed += not record_rows(db, "panels", p, sha, db_settings, profile_sha,
-                                          {"panels": by_image[str(p)]}, exposure_h=job.exposure_for(p))
+                                          {"panels": by_image[ResumeLedger.key(p)]},
+                                          exposure_h=job.exposure_for(p))
             continue
         todo.append(p)
     # in-process, the next photo decodes on a helper thread while this one is rated
@@ -459,7 +511,9 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
                 failed += 1
                 report_failure(out.error, out.trace)
                 rows = [_empty_row(str(out.item), out.error)]
-            by_image[str(out.item)] = rows
+                hours_here = job.exposure_for(out.item)
+                rows[0]["exposure_h"] = np.nan if hours_here is None else float(hours_here)
+            by_image[ResumeLedger.key(out.item)] = rows
     ledger.flush()
     for text in limit_warnings(rated_now):
         warnings.warn(text, RatingLimitWarning, stacklevel=1)
