@@ -349,3 +349,17 @@ def test_grades_across_the_scale(coating, kind, amount, true_grade):
     assert rust_grade(tr) == true_grade  # the scene lies in the grade it was made for
     assert _rust_ok(res["rust_area_pct"], tr), (coating, kind, res["rust_area_pct"], tr)
     assert abs(int(res["rust_grade"]) - int(true_grade)) <= 1, (coating, kind, res["rust_grade"], true_grade)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("seed", [1, 2])
+def test_no_scribe_found_on_unscribed_panels(seed):
+    # synthetic ground truth: no scribe painted.  On dark coatings the grid's border column (a little of the
+    # bright tray) was taken for a scribe along the whole edge (SCRIBE_MARGIN_MM's notes)
+    specs = [PanelSpec("dark", ()), PanelSpec("dark", ("spots",)), PanelSpec("white", ("general",))]
+    img, truth = tray_scene(specs, seed=seed, settings=TraySettings(image_wh=(1400, 1200), cols=3))
+    quads = find_panels(img)
+    assert len(quads) == 3
+    for q in quads:
+        res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
+        assert not res["scribe_found"], (q.position, res["_scribe"].lines)

@@ -73,7 +73,11 @@ def rate_panel(panel: RectifiedPanel, settings: PanelSettings, colour: ColourCor
     s = panel.px_per_mm
     rated0 = base_mask(lin.shape[:2], s, settings.edge_mm, settings.masks_mm, label_boxes_mm)
     model = unmix(lin, rated0, s)
-    scribe = measure_scribe(model, s, panel.size_mm, settings.scribe)
+    # masked areas and label boxes are not coating: a QR label's dark modules on the scribe's line
+    # carried the scribe (and its zone left out of the rating) 20 mm past its end
+    cut = ~base_mask(lin.shape[:2], s, 0.0, settings.masks_mm, label_boxes_mm) if (
+        settings.masks_mm or label_boxes_mm) else None
+    scribe = measure_scribe(model, s, panel.size_mm, settings.scribe, exclude=cut)
     rated = rated0 & ~scribe.corridor_mask(lin.shape[:2], s) if scribe.found else rated0
     rust = measure_rust(model, rated, s, settings.rust)
     grade = rust_grade(rust.rust_area_pct)

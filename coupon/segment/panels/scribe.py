@@ -55,6 +55,13 @@ SECOND_LINE_SHARE = 0.6
 #: Share of a coarse (0.5 mm) cell that must hold defect pixels for the line search.
 COARSE_CELL_SHARE = 0.3
 
+#: The outer band of the rectified panel (mm) left out of the scribe search.  The grid's border pixels
+#: can take in a little of the tray (the corners are placed to a fraction of a photo pixel), and on a
+#: dark coating that bright line along a whole edge was taken for a scribe (creep 0 mm, rating 10, and
+#: its zone left out of the rust rating).  A scribe is cut well inside the panel; its ends in this band
+#: are not measured anyway (the stations leave out ``end_mm`` at each end).
+SCRIBE_MARGIN_MM = 2.0
+
 
 @dataclass(frozen=True)
 class ScribeResult:
@@ -204,9 +211,15 @@ def _find_lines(defect: np.ndarray, px_per_mm: float, settings: ScribeSettings, 
             break
         if found and best[0] < SECOND_LINE_SHARE * found[0][1]:
             break  # the arms of an X are about equally long; a weaker band is scattered rust
-        # fine angle: the projection is sharpest when aligned with the band
+        # fine angle: the projection of the band's own cells (within 3 mm of the coarse peak) is sharpest
+        # when aligned with it; rust elsewhere on the panel (and, before SCRIBE_MARGIN_MM, the border)
+        # would pull the angle its way
+        h0, lo0 = _projection(xy, wts, best[1], 0.5)
+        rho0 = lo0 + (int(np.argmax(h0)) + 0.5) * 0.5
+        near = np.abs(xy[:, 0] * np.cos(best[1]) + xy[:, 1] * np.sin(best[1]) - rho0) < 3.0
+        band, band_w = xy[near], wts[near]
         fine = best[1] + np.deg2rad(np.arange(-1.5, 1.51, 0.1))
-        th = max(fine, key=lambda t: float((_projection(xy, wts, t, 0.25)[0] ** 2).sum()))
+        th = max(fine, key=lambda t: float((_projection(band, band_w, t, 0.25)[0] ** 2).sum()))
         found.append((th, best[0]))
     lines = []
     if not found:
@@ -352,8 +365,11 @@ def _station_maps(centres: np.ndarray, along: np.ndarray, offs: np.ndarray, u: n
 
 
 def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, float],
-                   settings: ScribeSettings = ScribeSettings()) -> ScribeResult:
+                   settings: ScribeSettings = ScribeSettings(), exclude: np.ndarray | None = None) -> ScribeResult:
     """Find the scribe(s) on a rectified panel and measure the creepage.
+
+    ``exclude``: pixels that are not coating (masks, label boxes), left out of the search and the
+    measurement, as is the outer :data:`SCRIBE_MARGIN_MM` of the grid.
 
     Returns an empty :class:`ScribeResult` (``found`` False) when no band of at
     least ``min_length_mm`` exists or ``mode`` is "none".
@@ -361,6 +377,13 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
     if settings.mode == "none":
         return ScribeResult(note="scribe search off")
     defect, metal = defect_map(model)
+    m = int(round(SCRIBE_MARGIN_MM * px_per_mm))
+    if m > 0:
+        for a in (defect, metal):
+            a[:m], a[-m:], a[:, :m], a[:, -m:] = 0, 0, 0, 0
+    if exclude is not None:
+        defect[exclude] = 0
+        metal[exclude] = 0
     want = {"line": 1, "x": 2}.get(settings.mode)
     lines = _find_lines(defect, px_per_mm, settings, want)
     if want and len(lines) != want:
