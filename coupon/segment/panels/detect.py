@@ -157,7 +157,7 @@ def _tray_distance(lab: np.ndarray, iterations: int = 3) -> np.ndarray:
         idx = _sample_idx(bg, 40000)  # flatnonzero(bg)[::count // 40000] without the full index list
         rr, cc = np.divmod(idx, cols)
         design = _poly_design(rows, cols, rr.astype(np.float64), cc.astype(np.float64))
-        coef = lstsq_quadratic(design, planes.reshape(3, -1)[:, idx].T)  # (6, 3), weighted channels
+        coef = _trimmed_fit(design, planes.reshape(3, -1)[:, idx].T.astype(np.float64))  # (6, 3)
         row_part = (coef[0] + yv * coef[2] + yv * yv * coef[5]).astype(np.float32)
         slope = (coef[1] + yv * coef[4]).astype(np.float32)
         c3 = coef[3].astype(np.float32)
@@ -176,6 +176,31 @@ def _tray_distance(lab: np.ndarray, iterations: int = 3) -> np.ndarray:
         if np.count_nonzero(bg) < 100:
             break
     return dist.astype(np.float32, copy=False)
+
+
+#: Rounds of the trimmed fit of the tray's colour model, and its cut (times the median residual).
+TRAY_FIT_ROUNDS = 4
+TRAY_FIT_CUT = 3.0
+
+
+def _trimmed_fit(design: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """Quadratic colour model of the tray from sampled pixels that may include some panel pixels.
+
+    Least squares, refitted on the samples within :data:`TRAY_FIT_CUT` times the median residual
+    (at least 1 Lab unit) until the kept set settles.  The first samples are a band along the frame's
+    edges; a panel standing over an edge put its pixels into that band, and a plain fit bent the tray's
+    model towards the panel's colour so far that the tray itself stood out (every panel then lost).
+    """
+    keep = np.ones(len(values), bool)
+    coef = lstsq_quadratic(design, values)
+    for _ in range(TRAY_FIT_ROUNDS):
+        res = np.sqrt(((design @ coef - values) ** 2).sum(axis=1))
+        new = res <= max(TRAY_FIT_CUT * float(np.median(res[keep])), 1.0)
+        if new.sum() < 50 or np.array_equal(new, keep):
+            break
+        keep = new
+        coef = lstsq_quadratic(design[keep], values[keep])
+    return coef
 
 
 def _otsu(values: np.ndarray) -> float:
@@ -364,7 +389,34 @@ def find_panels(rgb: np.ndarray, max_side_px: int = 1000, min_area_frac: float =
         if touches is None:
             quad = _refine_quad(rgb, quad, reach_px=max(4.0, 2.5 / f))
         quads.append(PanelQuad(quad, touches, fill))
-    return assign_positions(quads)
+    return assign_positions(_drop_background_at_edges(quads))
+
+
+#: A region at the frame's edge larger than this (times the whole panels' median longest side, or
+#: their median area) is background beyond the tray (a bench, a cabinet wall), not a panel standing
+#: over the edge.
+EDGE_REGION_MAX_REL = 1.3
+
+
+def _drop_background_at_edges(quads: list[PanelQuad]) -> list[PanelQuad]:
+    """The regions touching the frame's edge that can be panels partly outside it.
+
+    The part of a panel inside the frame is no longer and no larger than a whole panel; a strip of
+    bench along the whole frame edge is.  Without any whole panel to compare with, every region is kept.
+    """
+    inside = [q for q in quads if q.touches is None]
+    if not inside:
+        return quads
+    side = float(np.median([max(q.sides_px()) for q in inside]))
+    area = float(np.median([q.area_px2 for q in inside]))
+    keep = []
+    for q in quads:
+        if q.touches is not None:
+            span = q.corners_xy.max(axis=0) - q.corners_xy.min(axis=0)
+            if max(span) > EDGE_REGION_MAX_REL * side or q.area_px2 > EDGE_REGION_MAX_REL * area:
+                continue
+        keep.append(q)
+    return keep
 
 
 def check_panel_size(quad: PanelQuad, size_mm: tuple[float, float], px_per_mm: float | None = None,
