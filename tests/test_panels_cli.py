@@ -42,8 +42,10 @@ def test_end_to_end_outputs(runner, tray_file, tmp_path):
     assert list(table.columns) == PANEL_COLUMNS
     assert len(table) == 2
     assert (table["status"] == "ok").all()
-    # QR overrides the layout; the layout names the other panel
+    # QR overrides the layout (the slot's system stays, and a warning names the disagreement); the layout
+    # names the other panel
     assert table["panel_id"].tolist() == ["BW-2-C", "BW-1-B"]
+    assert "QR code BW-2-C is not in the layout, which names X-1 at R1C1" in res.output
     assert table["id_source"].tolist() == ["qr", "layout"]
     assert table["system"].fillna("").tolist() == ["BW-9", "BW-1"]
     assert (table["exposure_h"] == 240).all()
@@ -271,3 +273,39 @@ def test_same_file_name_in_two_folders_and_a_path_typed_another_way(runner, tray
     res = invoke(runner, ["panels", "tray_0168h.jpg", "--out", out])
     assert res.exit_code == 0 and "already rated" in res.output
     assert len(pd.read_csv(out / "panels.csv")) == 4
+
+
+def test_identity_of_a_qr_code_against_the_layout_and_empty_layout_positions():
+    from coupon.cli.panels import _qr_identity, identity_warnings
+
+    layout = {(1, 1): {"panel_id": "A-01", "system": "SysA", "replicate": "1"},
+              (2, 1): {"panel_id": "B-02", "system": "SysB", "replicate": "2"}}
+    # the code names a panel of the layout placed in another slot: its own system and replicate
+    moved = _qr_identity("A-01", (2, 1), layout)
+    assert (moved["panel_id"], moved["system"], moved["replicate"]) == ("A-01", "SysA", "1")
+    assert "where the layout names B-02" in moved["id_note"]
+    # a code the layout does not know (a serial number): the slot's system and replicate, with a note
+    other = _qr_identity("P-QR-007", (2, 1), layout)
+    assert (other["panel_id"], other["system"], other["replicate"]) == ("P-QR-007", "SysB", "2")
+    assert "not in the layout" in other["id_note"]
+    # no layout: the code alone
+    assert _qr_identity("P-QR-007", (2, 1), None)["system"] == ""
+    # the planned panel: no note
+    assert _qr_identity("B-02", (2, 1), layout)["id_note"] == ""
+    rows = [{"position": "R2C1", "row": 2, "col": 1, "id_note": other["id_note"]}]
+    notes = identity_warnings("t.jpg", rows, layout)
+    assert notes[0].startswith("t.jpg R2C1: QR code P-QR-007 is not in the layout")
+    assert notes[1] == "t.jpg: no panel found where the layout names R1C1 (A-01)"
+    assert identity_warnings("t.jpg", [{"position": float("nan"), "row": float("nan")}], layout) == []
+
+
+@pytest.mark.slow
+def test_an_image_without_exposure_time_is_named(runner, tray_file, tmp_path):
+    import shutil
+
+    path, _ = tray_file
+    photo = shutil.copy(path, tmp_path / "rack2_12h_24h.jpg")  # two numbers with h: ambiguous, not guessed
+    res = invoke(runner, ["panels", photo, "--out", tmp_path / "out"])
+    assert res.exit_code == 0, res.output
+    assert "1 image(s) have no exposure time (first: " in res.output and "rack2_0240h.jpg" in res.output
+    assert pd.read_csv(tmp_path / "out" / "panels.csv")["exposure_h"].isna().all()

@@ -149,6 +149,22 @@ def parse_mask(text: str) -> tuple:
                              param_hint="--mask")
 
 
+class PanelIdentityWarning(UserWarning):
+    """A panel's identity or exposure time is doubtful (the panels command)."""
+
+
+def identity_warnings(image, rows: list[dict], layout: dict | None) -> list[str]:
+    """QR codes that disagree with the layout, and layout positions where no panel was found."""
+    out = [f"{image} {r['position']}: {r['id_note']}" for r in rows if r.get("id_note")]
+    placed = [r for r in rows if pd.notna(r.get("row"))]  # a photo that failed as a whole has none
+    if layout and placed:
+        found = {(int(r["row"]), int(r["col"])) for r in placed}
+        missing = [f"R{p[0]}C{p[1]} ({layout[p]['panel_id']})" for p in sorted(layout) if p not in found]
+        if missing:
+            out.append(f"{image}: no panel found where the layout names {', '.join(missing)}")
+    return out
+
+
 class RatingLimitWarning(UserWarning):
     """Photos or panels beyond the limits within which rust was measured correctly (the panels command)."""
 
@@ -205,6 +221,32 @@ def output_names(paths: list[Path], previous: list[str], shas: dict[str, str]) -
     for p in paths:
         sha = shas.get(str(p), "")
         out[str(p)] = f"{p.stem}_{sha[:8]}" if len(seen[p.stem]) > 1 and sha else p.stem
+    return out
+
+
+def _qr_identity(text: str, position: tuple[int, int], layout: dict | None) -> dict:
+    """The identity a panel's QR code gives it, with a system and replicate from the layout.
+
+    The code is the panel's own: it wins over the layout.  When the layout lists the code's ID, the
+    system and replicate are that entry's (wherever the layout puts it: a panel in another slot than
+    planned keeps its own system); otherwise they are the layout's for this position (a layout of
+    systems by slot, codes carrying serial numbers).  ``id_note`` says when code and layout disagree.
+    """
+    out = {"panel_id": text, "id_source": "qr", "system": "", "replicate": "", "id_note": ""}
+    if not layout:
+        return out
+    entry = next((e for e in layout.values() if e["panel_id"] == text), None)
+    planned = layout.get(position)
+    where = f"R{position[0]}C{position[1]}"
+    if entry is not None:
+        out.update(system=entry["system"], replicate=entry["replicate"])
+        if planned is not None and planned["panel_id"] != text:
+            out["id_note"] = (f"QR code {text} stands at {where}, where the layout names {planned['panel_id']}; "
+                              f"system and replicate are the layout's for {text}")
+    elif planned is not None:
+        out.update(system=planned["system"], replicate=planned["replicate"])
+        out["id_note"] = (f"QR code {text} is not in the layout, which names {planned['panel_id']} at {where}; "
+                          f"system and replicate are the layout's for {where}")
     return out
 
 
@@ -287,7 +329,7 @@ def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings:
     if layout and (r, c) in layout:
         ident.update(layout[(r, c)], id_source="layout")
     if qr_hit is not None:
-        ident.update(panel_id=qr_hit[0], id_source="qr")
+        ident.update(_qr_identity(qr_hit[0], (r, c), layout))
     centre = q.centre_xy
     row = _empty_row(str(path), "ok") | ident | {
         "position": f"R{r}C{c}", "row": r, "col": c,
@@ -318,7 +360,8 @@ def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings:
     res = rate_panel(panel, settings, profile.colour if profile is not None else None, boxes)
     stem = f"{name or path.stem}_{_safe(row['panel_id'])}"
     overlay = out_dir / "overlays" / f"{stem}.png"
-    title = (f"{row['panel_id']} {row['position']}  rust {res['rust_area_pct']:.2f} %  "
+    name_pos = row["panel_id"] if row["panel_id"] == row["position"] else f"{row['panel_id']} {row['position']}"
+    title = (f"{name_pos}  rust {res['rust_area_pct']:.2f} %  "
              f"D610 {res['rust_grade_written']}  {res['ri_degree']}")
     if res["scribe_found"]:
         title += f"  creep {res['creep_mean_mm']:.2f} mm"
@@ -340,6 +383,7 @@ def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings:
         "coating_srgb": res["coating_srgb"], "coating_darker_than_rust": res["coating_darker_than_rust"],
         "rust_pixel_count_pct": res["rust_pixel_count_pct"],
         "scribe_lines_mm": scribe.lines, "creep_stations": scribe.stations, "scribe_note": scribe.note,
+        "id_note": row.get("id_note", ""),
         "rust_site_area_mm2": res["_rust"].site_area_mm2.tolist(),
         "settings": settings.to_dict(), "image_sha256": sha256,
         "profile": None if profile is None else str(profile.path),
@@ -496,6 +540,8 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
                 failed += bool(bad)
                 for r in bad:
                     report_failure(f"{out.item} {r['position']}: {r['status']}")
+                for text in identity_warnings(out.item, rows, layout):
+                    warnings.warn(text, PanelIdentityWarning, stacklevel=1)
                 sha = shas[str(out.item)] or file_sha256(out.item)  # hashed once, in the pre-scan
                 outputs = [r[k] for r in rows for k in ("overlay", "json") if isinstance(r.get(k), str)]
                 ledger.record(out.item, sha, digest, outputs, "ok" if not bad else "partial")
@@ -510,11 +556,18 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
             else:
                 failed += 1
                 report_failure(out.error, out.trace)
-                rows = [_empty_row(str(out.item), out.error)]
+                # the row names the image already: its status is the message alone
+                status = out.error.removeprefix(f"{out.item}: ")
+                rows = [_empty_row(str(out.item), status)]
                 hours_here = job.exposure_for(out.item)
                 rows[0]["exposure_h"] = np.nan if hours_here is None else float(hours_here)
             by_image[ResumeLedger.key(out.item)] = rows
     ledger.flush()
+    no_hours = [p for p in todo if job.exposure_for(p) is None]
+    if no_hours:
+        warnings.warn(f"{len(no_hours)} image(s) have no exposure time (first: {no_hours[0]}); give --hours, a "
+                      "--manifest, or the hours in the file name (e.g. rack2_0240h.jpg)", PanelIdentityWarning,
+                      stacklevel=1)
     for text in limit_warnings(rated_now):
         warnings.warn(text, RatingLimitWarning, stacklevel=1)
     all_rows = [r for rows in by_image.values() for r in rows]

@@ -76,6 +76,22 @@ def _init_worker() -> None:
     cv2.setNumThreads(1)
 
 
+def _between_bar_updates(bar, out):
+    """Yield ``out`` with the progress bar's line cleared, then draw the bar again.
+
+    On a terminal the bar is one line redrawn in place on stderr; the caller's result lines (stdout)
+    would otherwise start at the end of it ("...16% 00:00:10in/tray.jpg R1C1 ...").
+    """
+    live = bar is not None and getattr(bar, "_is_atty", False) and not getattr(bar, "hidden", False)
+    if live:
+        bar.file.write("\r\033[K")
+        bar.file.flush()
+        bar._last_line = None  # click draws only a changed line: draw it again after the caller's lines
+    yield out
+    if live:
+        bar.render_progress()
+
+
 def run_batch(
     items: Iterable[Any], func: Callable[[Any], Any], *, workers: int = 1, label: str = "Processing",
     progress: bool = True,
@@ -92,7 +108,7 @@ def run_batch(
                 out = _call(func, it)
                 if bar is not None:
                     bar.update(1)
-                yield out
+                yield from _between_bar_updates(bar, out)
         else:
             with ProcessPoolExecutor(max_workers=workers, mp_context=_pool_context(),
                                      initializer=_init_worker) as pool:
@@ -101,7 +117,7 @@ def run_batch(
                     out = fut.result()
                     if bar is not None:
                         bar.update(1)
-                    yield out
+                    yield from _between_bar_updates(bar, out)
     finally:
         if bar is not None:
             bar.__exit__(None, None, None)

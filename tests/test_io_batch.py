@@ -1,0 +1,26 @@
+"""The batch runner's progress bar on a terminal."""
+
+from __future__ import annotations
+
+
+def test_result_lines_start_on_a_line_of_their_own_under_the_progress_bar(monkeypatch):
+    # a terminal shows the bar (stderr) and the caller's lines (stdout) in one place: every line the caller
+    # writes between two items must begin at the start of a cleared line, not after the bar
+    import io
+    import sys
+
+    from coupon.io.batch import run_batch
+
+    class Terminal(io.StringIO):
+        def isatty(self):
+            return True
+
+    term = Terminal()
+    monkeypatch.setattr(sys, "stderr", term)
+    for out in run_batch([1, 2, 3], lambda x: x * 2, label="Rating"):
+        term.write(f"result {out.result}\n")
+    text = term.getvalue()
+    for k in (2, 4, 6):
+        before = text[:text.index(f"result {k}\n")]
+        assert before.endswith("\r\033[K"), repr(before[-40:])
+    assert "Rating" in text
