@@ -115,7 +115,7 @@ def test_calibrate_scale_no_board_found(runner, scenes, tmp_path):
     assert not (tmp_path / "p.json").exists()
 
 
-def test_calibrate_colour_and_indicator_then_phmap(runner, scenes, tmp_path):
+def test_calibrate_colour_and_indicator_then_phmap(runner, scenes, tmp_path, monkeypatch):
     prof = tmp_path / "p.json"
     r = invoke(runner, ["calibrate", "colour", scenes["chart"], "--patches", scenes["patches"], "--profile", prof])
     assert r.exit_code == 0, r.output
@@ -147,6 +147,12 @@ def test_calibrate_colour_and_indicator_then_phmap(runner, scenes, tmp_path):
     r = invoke(runner, ["phmap", scenes["drops"], "--profile", prof, "--out", out])
     assert r.exit_code == 0 and "already mapped" in r.output
     assert (out / "phmap.csv").read_text().count(stem) == summary.count(stem)
+    # and with the path typed relative to its folder
+    monkeypatch.chdir(scenes["drops"].parent)
+    r = invoke(runner, ["phmap", scenes["drops"].name, "--profile", prof, "--out", out])
+    assert r.exit_code == 0 and "already mapped" in r.output, r.output
+    assert (out / "phmap.csv").read_text().count(stem) == summary.count(stem)
+    monkeypatch.undo()
 
 
 def test_phmap_without_indicator_warns_and_uses_generic_table(runner, scenes, tmp_path):

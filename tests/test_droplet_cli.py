@@ -74,7 +74,7 @@ def test_series_events_within_one_frame(full_run):
 
 
 @pytest.mark.slow
-def test_resume_skips_done_frames(full_run, runner):
+def test_resume_skips_done_frames(full_run, runner, monkeypatch):
     root, spec, truths, res = full_run
     before = pd.read_csv(root / "out" / "droplet.csv")
     again = invoke(runner, ["droplet", root / "frames", "--profile", root / "profile.json", "--out", root / "out"])
@@ -82,6 +82,11 @@ def test_resume_skips_done_frames(full_run, runner):
     assert f"{spec.n_frames} frame(s) already analysed" in again.output
     after = pd.read_csv(root / "out" / "droplet.csv")
     pd.testing.assert_frame_equal(before, after)
+    # the frames typed relative to another folder: still done
+    monkeypatch.chdir(root)
+    again = invoke(runner, ["droplet", "frames", "--profile", root / "profile.json", "--out", root / "out"])
+    assert again.exit_code == 0 and f"{spec.n_frames} frame(s) already analysed" in again.output, again.output
+    monkeypatch.undo()
 
 
 def test_bad_frames_are_reported_and_the_rest_processed(tmp_path, runner):

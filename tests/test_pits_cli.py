@@ -34,7 +34,7 @@ def _subset(cols, wanted):
     return all(c in it for c in wanted)  # in order, extras allowed
 
 
-def test_end_to_end_with_height_map_and_mass_loss(runner, scene, tmp_path):
+def test_end_to_end_with_height_map_and_mass_loss(runner, scene, tmp_path, monkeypatch):
     d, img, truth, _ = scene
     out = tmp_path / "out"
     r = invoke(runner, ["pits", img, "--px-per-mm", 20, "--out", out, "--height-map", d / "c21_height.tiff",
@@ -63,6 +63,13 @@ def test_end_to_end_with_height_map_and_mass_loss(runner, scene, tmp_path):
     r2 = invoke(runner, ["pits", img, "--px-per-mm", 20, "--out", out, "--height-map", d / "c21_height.tiff",
                          "--height-unit", "um", "--mass-loss-mg", 650, "--exposed-area-cm2", 28.5, "--hours", 168])
     assert r2.exit_code == 0 and "already analysed" in r2.output
+    # the same image typed relative to its folder: still already analysed, no second row
+    monkeypatch.chdir(img.parent)
+    r2b = invoke(runner, ["pits", img.name, "--px-per-mm", 20, "--out", out, "--height-map", d / "c21_height.tiff",
+                          "--height-unit", "um", "--mass-loss-mg", 650, "--exposed-area-cm2", 28.5, "--hours", 168])
+    assert r2b.exit_code == 0 and "already analysed" in r2b.output, r2b.output
+    assert len(pd.read_csv(out / "pit_summary.csv")) == 1 and len(pd.read_csv(out / "pits.csv")) == len(pits)
+    monkeypatch.undo()
     r3 = invoke(runner, ["pits", img, "--px-per-mm", 20, "--out", out, "--force"])
     assert r3.exit_code == 0 and "already" not in r3.output
     pits3 = pd.read_csv(out / "pits.csv")

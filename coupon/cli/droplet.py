@@ -248,8 +248,9 @@ def droplet(frames, profile_path, out_dir, px_per_mm, acidic_below, basic_above,
     todo = []
     for p in paths:
         sha = try_sha256(p)
-        if not force and sha and ledger.is_done(p, sha, shash) and str(p) in old_rows:
-            results[p] = {"row": old_rows[str(p)], "radial": old_radial.get(str(p), [])}
+        key = ResumeLedger.key(p)  # the tables are keyed by resolved path: a rerun may type it another way
+        if not force and sha and ledger.is_done(p, sha, shash) and key in old_rows:
+            results[p] = {"row": old_rows[key], "radial": old_radial.get(key, [])}
             continue
         todo.append(p)
     if len(todo) < len(paths):
@@ -379,10 +380,10 @@ def _previous(out_dir: Path) -> tuple[dict, dict]:
                 for k in ("ph_tiff", "ph_png"):
                     r[k] = "" if pd.isna(r.get(k)) else r[k]
                 r["drop_found"] = bool(r["drop_found"])
-                rows[str(r["file"])] = r
+                rows[ResumeLedger.key(r["file"])] = r
         if g.exists():
             for r in pd.read_csv(g).to_dict("records"):
-                radial.setdefault(str(r["file"]), []).append(r)
+                radial.setdefault(ResumeLedger.key(r["file"]), []).append(r)
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, KeyError, ValueError,
             OSError) as exc:  # a damaged table means: redo, and say so
         warnings.warn(f"{out_dir}: earlier droplet tables cannot be read back ({exc}); all frames are redone")

@@ -84,11 +84,12 @@ def phmap(images, profile_path, out_dir, workers, force, max_megapixels):
     ledger = ResumeLedger(out_dir, "phmap")
     summary_path = out_dir / "phmap.csv"
     old = read_previous(summary_path, SUMMARY_COLUMNS)
-    rows = {str(r["image"]): r for r in old.to_dict("records")}
+    # keyed by the resolved path: a rerun may type the path another way
+    rows = {ResumeLedger.key(r["image"]): r for r in old.to_dict("records")}
     todo = []
     for p in paths:
         sha = try_sha256(p)
-        if not force and sha and ledger.is_done(p, sha, settings) and str(p) in rows:
+        if not force and sha and ledger.is_done(p, sha, settings) and ResumeLedger.key(p) in rows:
             click.echo(f"{p}: already mapped (use --force to redo)")
             continue
         todo.append(p)
@@ -105,7 +106,7 @@ def phmap(images, profile_path, out_dir, workers, force, max_megapixels):
             failed += 1
             report_failure(out.error, out.trace)
             r = {c: np.nan for c in SUMMARY_COLUMNS} | {"image": str(out.item), "status": out.error}
-        rows[str(out.item)] = r
+        rows[ResumeLedger.key(out.item)] = r
     ledger.flush()
     write_csv(summary_path, pd.DataFrame(list(rows.values()), columns=SUMMARY_COLUMNS))
     click.echo(f"summary: {summary_path}")

@@ -322,7 +322,8 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
     ledger = ResumeLedger(out_dir, "pits")
     summary_path, pits_path = out_dir / "pit_summary.csv", out_dir / "pits.csv"
     old = read_previous(summary_path, SUMMARY_COLUMNS, keep_default_na=False)
-    rows = {str(r["image"]): r for r in old.to_dict("records")}
+    # keyed by the resolved path: a rerun may type the path another way
+    rows = {ResumeLedger.key(r["image"]): r for r in old.to_dict("records")}
     old_pits = read_previous(pits_path, PITS_COLUMNS)
     from coupon.campaign.store import is_recorded, resolve_db_path
 
@@ -340,12 +341,14 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
                "version": COMMAND_VERSION, "height_sha": h_sha or None}
         item_settings[str(p)] = settings_hash(key)
         sha = try_sha256(p)
-        if not force and sha and ledger.is_done(p, sha, item_settings[str(p)]) and str(p) in rows:
+        if not force and sha and ledger.is_done(p, sha, item_settings[str(p)]) and ResumeLedger.key(p) in rows:
             click.echo(f"{p}: already analysed (use --force to redo)")
             if not is_recorded(db, "pits", p, sha):  # a database added after the first run gets every image
-                kept_pits = old_pits[old_pits["image"].astype(str) == str(p)].to_dict("records")
+                same = old_pits["image"].astype(str).map(ResumeLedger.key) == ResumeLedger.key(p)
+                kept_pits = old_pits[same].to_dict("records")
                 failed += not record_rows(db, "pits", p, sha, db_settings, profile_sha,
-                                          {"pits": kept_pits, "pit_summary": [rows[str(p)]]}, exposure_h=hours)
+                                          {"pits": kept_pits, "pit_summary": [rows[ResumeLedger.key(p)]]},
+                                          exposure_h=hours)
             continue
         todo.append(p)
     new_pits: dict[str, list[dict]] = {}
@@ -355,7 +358,7 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
     func = (lambda p: pit_rows_for_image(p, job, ahead(p))) if workers <= 1 else job
     with ahead:
         for out in run_batch(todo, func, workers=workers, label="Pits"):
-            key = str(out.item)
+            key, rkey = str(out.item), ResumeLedger.key(out.item)
             if out.ok:
                 r = out.result
                 ledger.record(out.item, r["sha256"], item_settings[key], r["outputs"])
@@ -370,17 +373,18 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
                            + (f", {_fmt(s['corrosion_rate_mm_y'], '.4g')} mm/y = "
                               f"{_fmt(s['corrosion_rate_mpy'], '.4g')} mpy,"
                               f" pitting factor {_fmt(s['pitting_factor'], '.1f')}" if mass is not None else ""))
-                rows[key] = s
-                new_pits[key] = r["pits"]
+                rows[rkey] = s
+                new_pits[rkey] = r["pits"]
                 failed += not record_rows(db, "pits", out.item, r["sha256"], db_settings, profile_sha,
                                           {"pits": r["pits"], "pit_summary": [s]}, exposure_h=hours)
             else:
                 failed += 1
                 report_failure(out.error, out.trace)
-                rows[key] = {c: np.nan for c in SUMMARY_COLUMNS} | {"image": key, "status": out.error}
-                new_pits[key] = []
+                rows[rkey] = {c: np.nan for c in SUMMARY_COLUMNS} | {"image": key, "status": out.error}
+                new_pits[rkey] = []
     ledger.flush()
-    kept = old_pits[~old_pits["image"].astype(str).isin(list(new_pits))] if len(old_pits) else old_pits
+    kept = (old_pits[~old_pits["image"].astype(str).map(ResumeLedger.key).isin(list(new_pits))] if len(old_pits)
+            else old_pits)
     fresh = [r for v in new_pits.values() for r in v]
     table = pd.concat([t for t in (kept.reindex(columns=PITS_COLUMNS), pd.DataFrame(fresh, columns=PITS_COLUMNS))
                        if len(t)], ignore_index=True) if (len(kept) or fresh) else pd.DataFrame(columns=PITS_COLUMNS)
