@@ -77,6 +77,11 @@ def test_end_to_end_outputs(runner, tray_file, tmp_path):
     t2 = pd.read_csv(tmp_path / "out" / "panels.csv")
     assert (t2["exposure_h"] == 504).all()
     assert t2["panel_id"].tolist() == ["R1C1", "R1C2"]
+    # the IDs changed (no layout, no QR): the files of the old IDs are gone, one JSON and overlay per panel
+    assert sorted(p.name for p in (tmp_path / "out" / "panels").glob("*.json")) == \
+        ["rack2_0240h_R1C1.json", "rack2_0240h_R1C2.json"]
+    assert sorted(p.name for p in (tmp_path / "out" / "overlays").glob("*.png")) == \
+        ["rack2_0240h_R1C1.png", "rack2_0240h_R1C2.png"]
 
 
 def test_layout_naming_a_position_twice(runner, tmp_path):

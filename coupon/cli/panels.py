@@ -544,6 +544,7 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
                     warnings.warn(text, PanelIdentityWarning, stacklevel=1)
                 sha = shas[str(out.item)] or file_sha256(out.item)  # hashed once, in the pre-scan
                 outputs = [r[k] for r in rows for k in ("overlay", "json") if isinstance(r.get(k), str)]
+                ledger.replace_outputs(out.item, outputs, out_dir)  # files of panel IDs this run no longer gives
                 ledger.record(out.item, sha, digest, outputs, "ok" if not bad else "partial")
                 failed += not record_rows(db, "panels", out.item, sha, db_settings, profile_sha, {"panels": rows},
                                           exposure_h=job.exposure_for(out.item))

@@ -197,6 +197,26 @@ class ResumeLedger:
             and all(Path(o).exists() for o in e.get("outputs", []))
         )
 
+    def replace_outputs(self, path, outputs: list, out_dir: str | os.PathLike) -> list[Path]:
+        """Delete the files an earlier run recorded for ``path`` that the new ``outputs`` no longer include.
+
+        Only files inside ``out_dir`` are touched (the command's own outputs): when a panel's ID changes
+        (a layout added, a QR code read), its old overlay and JSON would otherwise stay beside the new
+        ones and be counted twice by anyone reading the folder.  Returns the deleted files.
+        """
+        e = self.entries.get(self.key(path))
+        if not e:
+            return []
+        root = Path(out_dir).resolve()
+        keep = {Path(o).resolve() for o in outputs}
+        gone = []
+        for o in e.get("outputs", []):
+            f = Path(o).resolve()
+            if f not in keep and f.is_file() and root in f.parents:
+                f.unlink()
+                gone.append(f)
+        return gone
+
     def record(self, path, sha256: str, settings: str, outputs: list, status: str = "ok") -> None:
         self.entries[self.key(path)] = {
             "sha256": sha256, "settings": settings, "outputs": [str(o) for o in outputs], "status": status,
