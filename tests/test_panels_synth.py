@@ -380,3 +380,25 @@ def test_a_panel_far_over_the_frame_edge_is_reported(shift_mm):
     assert [(q.position, q.touches) for q in quads] == [((1, 1), "left"), ((1, 2), None), ((1, 3), None)]
     for q, p in zip(quads[1:], truth["panels"][1:]):
         assert np.max(np.linalg.norm(q.corners_xy - p["corners_img_xy"], axis=1)) < 1.5
+
+
+def test_mixed_portrait_and_landscape_rows_get_unique_positions():
+    # synthetic ground truth: a row of 4 portrait panels over 2 rows of 3 landscape ones (x in mm, 4 px/mm);
+    # their columns do not line up: every panel must still get a position of its own, in its row, numbered
+    # left to right (the columns may skip a number where a column of another row lies between)
+    from coupon.segment.panels.detect import PanelQuad, assign_positions
+
+    quads, want = [], []
+    for r, (w, h, n, y0) in enumerate([(75, 150, 4, 20), (150, 75, 3, 200), (150, 75, 3, 300)]):
+        for c in range(n):
+            x0 = 20 + c * (w + 25)
+            rect = np.array([[x0, y0], [x0 + w, y0], [x0 + w, y0 + h], [x0, y0 + h]], float) * 4.0
+            quads.append(PanelQuad(rect, None, 1.0))
+            want.append((r + 1, c + 1))
+    got = {tuple(np.round(q.centre_xy, 6)): q.position for q in assign_positions(quads)}
+    pos = [got[tuple(np.round(q.centre_xy, 6))] for q in quads]
+    assert len(set(pos)) == len(pos)
+    assert [p[0] for p in pos] == [w[0] for w in want]
+    for r in (1, 2, 3):
+        cols = [p[1] for p in pos if p[0] == r]
+        assert cols == sorted(cols)

@@ -351,6 +351,17 @@ def assign_positions(quads: list[PanelQuad]) -> list[PanelQuad]:
     y = centres[:, 0] * sin + centres[:, 1] * cos
     rows = _group_1d(y, 0.5 * float(np.median(heights)))
     cols = _group_1d(x, 0.5 * float(np.median(widths)))
+    # the tray's columns only when they make a grid: one panel per slot and columns in x order within each
+    # row (mixed portrait and landscape panels shift the columns between rows and put two panels of a row
+    # in one column); otherwise each row is numbered on its own
+    per_row = np.bincount(rows)
+    slots = set(zip(rows.tolist(), cols.tolist()))
+    in_order = all(np.all(np.diff(cols[rows == r][np.argsort(x[rows == r])]) > 0) for r in range(per_row.size))
+    if len(slots) != len(quads) or not in_order:
+        cols = np.empty(len(quads), int)
+        for r in range(per_row.size):
+            members = np.flatnonzero(rows == r)
+            cols[members[np.argsort(x[members], kind="stable")]] = np.arange(members.size)
     out = [PanelQuad(q.corners_xy, q.touches, q.fill_ratio, (int(rows[i]) + 1, int(cols[i]) + 1))
            for i, q in enumerate(quads)]
     return sorted(out, key=lambda q: q.position)
