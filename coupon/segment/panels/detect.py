@@ -333,7 +333,9 @@ def assign_positions(quads: list[PanelQuad]) -> list[PanelQuad]:
     Rows and columns are the tray's: the centres are turned by the panels' mean roll (the direction
     of their top and bottom sides), then grouped along each axis over the whole tray.  A column
     therefore keeps its number in a row where a slot is empty (the panels to the right of a gap are
-    not moved left); only a column empty in every row cannot be seen.
+    not moved left); only a column empty in every row cannot be seen.  When the columns do not make a
+    grid (two panels of a row in one column, as with mixed portrait and landscape rows), each row is
+    numbered on its own, left to right.
     """
     if not quads:
         return []
@@ -351,17 +353,15 @@ def assign_positions(quads: list[PanelQuad]) -> list[PanelQuad]:
     y = centres[:, 0] * sin + centres[:, 1] * cos
     rows = _group_1d(y, 0.5 * float(np.median(heights)))
     cols = _group_1d(x, 0.5 * float(np.median(widths)))
-    # the tray's columns only when they make a grid: one panel per slot and columns in x order within each
-    # row (mixed portrait and landscape panels shift the columns between rows and put two panels of a row
-    # in one column); otherwise each row is numbered on its own
-    per_row = np.bincount(rows)
-    slots = set(zip(rows.tolist(), cols.tolist()))
-    in_order = all(np.all(np.diff(cols[rows == r][np.argsort(x[rows == r])]) > 0) for r in range(per_row.size))
-    if len(slots) != len(quads) or not in_order:
+    # the tray's columns only when they make a grid: within each row, columns strictly increasing left to
+    # right (so one panel per slot; mixed portrait and landscape panels shift the columns between rows and
+    # put two panels of a row in one column); otherwise each row is numbered on its own
+    in_row = [np.flatnonzero(rows == r) for r in range(int(rows.max()) + 1)]
+    in_row = [m[np.argsort(x[m], kind="stable")] for m in in_row]
+    if not all(np.all(np.diff(cols[m]) > 0) for m in in_row):
         cols = np.empty(len(quads), int)
-        for r in range(per_row.size):
-            members = np.flatnonzero(rows == r)
-            cols[members[np.argsort(x[members], kind="stable")]] = np.arange(members.size)
+        for m in in_row:
+            cols[m] = np.arange(m.size)
     out = [PanelQuad(q.corners_xy, q.touches, q.fill_ratio, (int(rows[i]) + 1, int(cols[i]) + 1))
            for i, q in enumerate(quads)]
     return sorted(out, key=lambda q: q.position)
