@@ -214,6 +214,13 @@ def _fmt(x: float, spec: str) -> str:
     return format(x, spec) if isinstance(x, (int, float)) and np.isfinite(x) else "-"
 
 
+def _resolved(images: pd.Series) -> pd.Series:
+    """Each row's image as a resolved path (``ResumeLedger.key``), resolving each distinct path once: pits.csv
+    holds one row per pit, and a path resolution is a file-system call."""
+    text = images.astype(str)
+    return text.map({v: ResumeLedger.key(v) for v in text.unique()})
+
+
 @click.command("pits")
 @click.argument("images", nargs=-1, required=True, type=click.Path(path_type=Path))
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
@@ -344,7 +351,7 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
         if not force and sha and ledger.is_done(p, sha, item_settings[str(p)]) and ResumeLedger.key(p) in rows:
             click.echo(f"{p}: already analysed (use --force to redo)")
             if not is_recorded(db, "pits", p, sha):  # a database added after the first run gets every image
-                same = old_pits["image"].astype(str).map(ResumeLedger.key) == ResumeLedger.key(p)
+                same = _resolved(old_pits["image"]) == ResumeLedger.key(p)
                 kept_pits = old_pits[same].to_dict("records")
                 failed += not record_rows(db, "pits", p, sha, db_settings, profile_sha,
                                           {"pits": kept_pits, "pit_summary": [rows[ResumeLedger.key(p)]]},
@@ -383,8 +390,7 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
                 rows[rkey] = {c: np.nan for c in SUMMARY_COLUMNS} | {"image": key, "status": out.error}
                 new_pits[rkey] = []
     ledger.flush()
-    kept = (old_pits[~old_pits["image"].astype(str).map(ResumeLedger.key).isin(list(new_pits))] if len(old_pits)
-            else old_pits)
+    kept = old_pits[~_resolved(old_pits["image"]).isin(list(new_pits))] if len(old_pits) else old_pits
     fresh = [r for v in new_pits.values() for r in v]
     table = pd.concat([t for t in (kept.reindex(columns=PITS_COLUMNS), pd.DataFrame(fresh, columns=PITS_COLUMNS))
                        if len(t)], ignore_index=True) if (len(kept) or fresh) else pd.DataFrame(columns=PITS_COLUMNS)
