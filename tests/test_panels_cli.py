@@ -84,14 +84,19 @@ def test_end_to_end_outputs(runner, tray_file, tmp_path):
         ["rack2_0240h_R1C1.png", "rack2_0240h_R1C2.png"]
 
 
-def test_layout_naming_a_position_twice(runner, tmp_path):
+# a position named twice; a panel_id named twice (two positions with one ID would write one overlay and one
+# JSON for two panels)
+@pytest.mark.parametrize("text, message", [
+    ("row,col,panel_id\n1,1,A\n1,2,B\n1,1,C\n", "position row 1, col 1 is named twice (lines 2 and 4)"),
+    ("row,col,panel_id\n1,1,C-01\n1,2,C-02\n2,1,C-01\n", "panel_id 'C-01' is named twice (lines 2 and 4)"),
+])
+def test_layout_naming_a_position_or_a_panel_id_twice(runner, tmp_path, text, message):
     layout = tmp_path / "layout.csv"
-    layout.write_text("row,col,panel_id\n1,1,A\n1,2,B\n1,1,C\n")
+    layout.write_text(text)
     img = tmp_path / "a.png"
     img.write_bytes(b"")
     res = invoke(runner, ["panels", img, "--out", tmp_path / "out", "--layout", layout])
-    assert res.exit_code == 2
-    assert "position row 1, col 1 is named twice (lines 2 and 4)" in res.output
+    assert res.exit_code == 2 and message in res.output
 
 
 @pytest.mark.slow
@@ -222,16 +227,6 @@ def test_limit_warnings_name_the_lowest_resolution_the_chroma_and_dark_coatings(
     assert chroma.startswith("1 photo(s) are JPEGs with 4:2:0 chroma subsampling")
     assert dark.startswith("1 panel(s) on dark coatings, darker than the rust colours (t2.jpg R1C2)")
     assert limit_warnings(rows[:1] + rows[3:]) == []  # 4:4:4 at 7.2 px/mm and a PNG: nothing to say
-
-
-def test_layout_naming_a_panel_id_twice(runner, tmp_path):
-    # two positions with one ID would write one overlay and one JSON for two panels
-    layout = tmp_path / "layout.csv"
-    layout.write_text("row,col,panel_id\n1,1,C-01\n1,2,C-02\n2,1,C-01\n")
-    img = tmp_path / "a.png"
-    img.write_bytes(b"")
-    res = invoke(runner, ["panels", img, "--out", tmp_path / "out", "--layout", layout])
-    assert res.exit_code == 2 and "panel_id 'C-01' is named twice (lines 2 and 4)" in res.output
 
 
 def test_manifest_refuses_negative_and_conflicting_hours(runner, tmp_path):
