@@ -1,6 +1,8 @@
-"""The batch runner's progress bar on a terminal."""
+"""The batch runner: its progress bar on a terminal, the resume ledger."""
 
 from __future__ import annotations
+
+from pathlib import Path
 
 
 def test_result_lines_start_on_a_line_of_their_own_under_the_progress_bar(monkeypatch):
@@ -41,3 +43,26 @@ def test_replace_outputs_deletes_only_the_commands_own_stale_files(tmp_path):
     assert gone == [old_a.resolve()]
     assert not old_a.exists() and old_b.exists() and keep.exists() and outside.exists()
     assert ledger.replace_outputs(tmp_path / "other.jpg", [], out) == []  # nothing recorded: nothing deleted
+
+
+def test_resume_ledger_does_not_depend_on_the_working_folder(tmp_path, monkeypatch):
+    """Outputs are stored relative to the output folder and CSV paths map back to their input: a rerun
+    from another working folder (both paths typed relative to it) finds what the first run did."""
+    from coupon.io.batch import ResumeLedger
+
+    (tmp_path / "day" / "out" / "overlays").mkdir(parents=True)
+    (tmp_path / "day" / "t.jpg").write_bytes(b"x")
+    monkeypatch.chdir(tmp_path)
+    led = ResumeLedger("day/out", "panels")
+    png = Path("day/out/overlays/t_R1C1.png")
+    png.write_bytes(b"png")
+    led.record("day/t.jpg", "sha", "s", [png])
+    led.flush()
+    assert led.entries[str(tmp_path / "day" / "t.jpg")]["outputs"] == ["overlays/t_R1C1.png"]
+    monkeypatch.chdir(tmp_path / "day")
+    again = ResumeLedger("out", "panels")
+    assert again.is_done("t.jpg", "sha", "s")
+    assert again.row_key("day/t.jpg") == str(tmp_path / "day" / "t.jpg")  # the text the first run wrote
+    assert again.row_key("t.jpg") == str(tmp_path / "day" / "t.jpg")  # not recorded: resolved here
+    (tmp_path / png).unlink()
+    assert not again.is_done("t.jpg", "sha", "s")  # an output gone: redo

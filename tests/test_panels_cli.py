@@ -257,22 +257,31 @@ def test_same_file_name_in_two_folders_and_a_path_typed_another_way(runner, tray
     path, _ = tray_file
     for d in ("dayA", "dayB"):
         (tmp_path / d).mkdir()
-    a = shutil.copy(path, tmp_path / "dayA" / "tray_0168h.jpg")
+    shutil.copy(path, tmp_path / "dayA" / "tray_0168h.jpg")
     # another photo under the same name: a different file (one byte of JPEG comment changes its hash)
     data = path.read_bytes()
     (tmp_path / "dayB" / "tray_0168h.jpg").write_bytes(data[:2] + b"\xff\xfe\x00\x03B" + data[2:])
     out = tmp_path / "out"
-    res = invoke(runner, ["panels", a, tmp_path / "dayB" / "tray_0168h.jpg", "--out", out])
+    # every path relative to the working folder, as a lab types them
+    monkeypatch.chdir(tmp_path)
+    res = invoke(runner, ["panels", "dayA/tray_0168h.jpg", "dayB/tray_0168h.jpg", "--out", "out"])
     assert res.exit_code == 0, res.output
     table = pd.read_csv(out / "panels.csv")
     assert len(table) == 4 and table["json"].nunique() == 4 and table["overlay"].nunique() == 4
     for _, r in table.iterrows():  # each JSON belongs to its own image
         assert json.loads(Path(r["json"]).read_text())["image"] == r["image"]
-    # the same image typed relative to another folder: already rated, no second set of rows
+    # the same images typed from another working folder (image and --out both relative to it):
+    # already rated, no second set of rows, and the other day's rows are kept
     monkeypatch.chdir(tmp_path / "dayA")
-    res = invoke(runner, ["panels", "tray_0168h.jpg", "--out", out])
-    assert res.exit_code == 0 and "already rated" in res.output
-    assert len(pd.read_csv(out / "panels.csv")) == 4
+    res = invoke(runner, ["panels", "tray_0168h.jpg", "../dayB/tray_0168h.jpg", "--out", "../out"])
+    assert res.exit_code == 0 and res.output.count("already rated") == 2, res.output
+    again = pd.read_csv(out / "panels.csv")
+    assert len(again) == 4 and sorted(again["image"]) == sorted(table["image"])
+    # one image redone from there: its rows replace its own, not the other day's
+    res = invoke(runner, ["panels", "tray_0168h.jpg", "--out", "../out", "--force"])
+    assert res.exit_code == 0 and "already rated" not in res.output
+    redone = pd.read_csv(out / "panels.csv")
+    assert len(redone) == 4 and sorted(redone["image"]) == sorted(["dayB/tray_0168h.jpg"] * 2 + ["tray_0168h.jpg"] * 2)
 
 
 def test_identity_of_a_qr_code_against_the_layout_and_empty_layout_positions():

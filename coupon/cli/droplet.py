@@ -243,7 +243,7 @@ def droplet(frames, profile_path, out_dir, px_per_mm, acidic_below, basic_above,
 
     # resume: frames already analysed with the same bytes and settings keep their rows
     ledger = ResumeLedger(out_dir, COMMAND)
-    old_rows, old_radial = _previous(out_dir)
+    old_rows, old_radial = _previous(out_dir, ledger)
     results: dict[Path, dict] = {}
     todo = []
     for p in paths:
@@ -369,7 +369,8 @@ def _record_series(db_path, out_dir: Path, frame_table: pd.DataFrame, radial_row
     return failed
 
 
-def _previous(out_dir: Path) -> tuple[dict, dict]:
+def _previous(out_dir: Path, ledger: ResumeLedger) -> tuple[dict, dict]:
+    """The rows of droplet.csv and radial_profile.csv, keyed by the input's resolved path (``ledger.row_key``)."""
     rows, radial = {}, {}
     f, g = out_dir / "droplet.csv", out_dir / "radial_profile.csv"
     try:
@@ -380,10 +381,10 @@ def _previous(out_dir: Path) -> tuple[dict, dict]:
                 for k in ("ph_tiff", "ph_png"):
                     r[k] = "" if pd.isna(r.get(k)) else r[k]
                 r["drop_found"] = bool(r["drop_found"])
-                rows[ResumeLedger.key(r["file"])] = r
+                rows[ledger.row_key(r["file"])] = r
         if g.exists():
             for r in pd.read_csv(g).to_dict("records"):
-                radial.setdefault(ResumeLedger.key(r["file"]), []).append(r)
+                radial.setdefault(ledger.row_key(r["file"]), []).append(r)
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, KeyError, ValueError,
             OSError) as exc:  # a damaged table means: redo, and say so
         warnings.warn(f"{out_dir}: earlier droplet tables cannot be read back ({exc}); all frames are redone")

@@ -211,7 +211,8 @@ def output_names(paths: list[Path], previous: list[str], shas: dict[str, str]) -
     """The stem of each image's output files (``<stem>_<panel_id>.png`` and ``.json``).
 
     An image's own file stem, or ``<stem>_<first 8 hex digits of its SHA-256>`` when another image of
-    this run, or one rated into the folder before (``previous``, the images of panels.csv), has the
+    this run, or one rated into the folder before (``previous``, the images of panels.csv as resolved
+    paths or as given), has the
     same stem: ``dayA/tray_0168h.jpg`` and ``dayB/tray_0168h.jpg`` must not write each other's files.
     """
     seen: dict[str, set[str]] = {}
@@ -505,15 +506,15 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
     table_path = out_dir / "panels.csv"
     old = read_previous(table_path, PANEL_COLUMNS, dtype={"panel_id": str})
     by_image: dict[str, list[dict]] = {}
-    for rec in old.to_dict("records"):  # keyed by the resolved path: a rerun may type the path another way
-        by_image.setdefault(ResumeLedger.key(rec["image"]), []).append(rec)
+    for rec in old.to_dict("records"):  # keyed by the input's resolved path (ResumeLedger.row_key): a rerun
+        by_image.setdefault(ledger.row_key(rec["image"]), []).append(rec)  # may type it another way or run elsewhere
     from coupon.campaign.store import is_recorded, resolve_db_path
 
     db = resolve_db_path(out_dir, db_path)
     db_settings = {"settings": settings.to_dict(), "layout": str(layout_path) if layout_path else None}
     profile_sha = profile.sha256 if profile else None
     shas = {str(p): try_sha256(p) for p in paths}
-    names = output_names(paths, [r["image"] for rows in by_image.values() for r in rows], shas)
+    names = output_names(paths, list(by_image), shas)
     job = PanelsJob(settings, profile, out_dir, layout, hours, manifest, int(max_megapixels * 1e6), names)
     failed = 0
     todo = []

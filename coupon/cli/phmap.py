@@ -84,8 +84,8 @@ def phmap(images, profile_path, out_dir, workers, force, max_megapixels):
     ledger = ResumeLedger(out_dir, "phmap")
     summary_path = out_dir / "phmap.csv"
     old = read_previous(summary_path, SUMMARY_COLUMNS)
-    # keyed by the resolved path: a rerun may type the path another way
-    rows = {ResumeLedger.key(r["image"]): r for r in old.to_dict("records")}
+    # keyed by the input's resolved path (ResumeLedger.row_key): a rerun may type it another way or run elsewhere
+    rows = {ledger.row_key(r["image"]): r for r in old.to_dict("records")}
     todo = []
     for p in paths:
         sha = try_sha256(p)

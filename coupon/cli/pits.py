@@ -214,11 +214,11 @@ def _fmt(x: float, spec: str) -> str:
     return format(x, spec) if isinstance(x, (int, float)) and np.isfinite(x) else "-"
 
 
-def _resolved(images: pd.Series) -> pd.Series:
-    """Each row's image as a resolved path (``ResumeLedger.key``), resolving each distinct path once: pits.csv
-    holds one row per pit, and a path resolution is a file-system call."""
+def _resolved(images: pd.Series, ledger: ResumeLedger) -> pd.Series:
+    """Each row's image as the resolved path of its input (``ledger.row_key``), resolving each distinct path
+    once: pits.csv holds one row per pit, and a path resolution is a file-system call."""
     text = images.astype(str)
-    return text.map({v: ResumeLedger.key(v) for v in text.unique()})
+    return text.map({v: ledger.row_key(v) for v in text.unique()})
 
 
 @click.command("pits")
@@ -329,8 +329,8 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
     ledger = ResumeLedger(out_dir, "pits")
     summary_path, pits_path = out_dir / "pit_summary.csv", out_dir / "pits.csv"
     old = read_previous(summary_path, SUMMARY_COLUMNS, keep_default_na=False)
-    # keyed by the resolved path: a rerun may type the path another way
-    rows = {ResumeLedger.key(r["image"]): r for r in old.to_dict("records")}
+    # keyed by the input's resolved path (ResumeLedger.row_key): a rerun may type it another way or run elsewhere
+    rows = {ledger.row_key(r["image"]): r for r in old.to_dict("records")}
     old_pits = read_previous(pits_path, PITS_COLUMNS)
     from coupon.campaign.store import is_recorded, resolve_db_path
 
@@ -351,7 +351,7 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
         if not force and sha and ledger.is_done(p, sha, item_settings[str(p)]) and ResumeLedger.key(p) in rows:
             click.echo(f"{p}: already analysed (use --force to redo)")
             if not is_recorded(db, "pits", p, sha):  # a database added after the first run gets every image
-                same = _resolved(old_pits["image"]) == ResumeLedger.key(p)
+                same = _resolved(old_pits["image"], ledger) == ResumeLedger.key(p)
                 kept_pits = old_pits[same].to_dict("records")
                 failed += not record_rows(db, "pits", p, sha, db_settings, profile_sha,
                                           {"pits": kept_pits, "pit_summary": [rows[ResumeLedger.key(p)]]},
@@ -390,7 +390,7 @@ def pits(images, out_dir, profile_path, px_per_mm, edge_mm, min_pit_mm2, pit_loo
                 rows[rkey] = {c: np.nan for c in SUMMARY_COLUMNS} | {"image": key, "status": out.error}
                 new_pits[rkey] = []
     ledger.flush()
-    kept = old_pits[~_resolved(old_pits["image"]).isin(list(new_pits))] if len(old_pits) else old_pits
+    kept = old_pits[~_resolved(old_pits["image"], ledger).isin(list(new_pits))] if len(old_pits) else old_pits
     fresh = [r for v in new_pits.values() for r in v]
     table = pd.concat([t for t in (kept.reindex(columns=PITS_COLUMNS), pd.DataFrame(fresh, columns=PITS_COLUMNS))
                        if len(t)], ignore_index=True) if (len(kept) or fresh) else pd.DataFrame(columns=PITS_COLUMNS)

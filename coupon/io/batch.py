@@ -169,15 +169,22 @@ def settings_hash(settings: dict) -> str:
 class ResumeLedger:
     """Which inputs a command has already processed into an output folder.
 
-    Stored as ``DIR/.coupon/<command>_done.json``: input path -> {sha256,
-    settings, outputs, status}.  An entry counts as done when the input's bytes,
-    the settings and all its recorded output files are unchanged.
+    Stored as ``DIR/.coupon/<command>_done.json``: resolved input path -> {image,
+    sha256, settings, outputs, status}.  An entry counts as done when the input's
+    bytes, the settings and all its recorded output files are unchanged.
+
+    Nothing in it depends on the working directory of the run that wrote it: the
+    outputs inside ``DIR`` are stored relative to ``DIR`` (so a rerun from another
+    folder, or of a moved output folder, still finds them), and ``image`` keeps the
+    path as the run was given it, the way the command's CSV writes it, so
+    :meth:`row_key` can tell which input a CSV row belongs to.
     """
 
     #: seconds between writes of the ledger during a batch (and always at :meth:`flush`)
     FLUSH_EVERY_S = 5.0
 
     def __init__(self, out_dir: str | os.PathLike, command: str):
+        self.root = Path(out_dir).resolve()
         self.path = Path(out_dir) / ".coupon" / f"{command}_done.json"
         self._dirty = False
         self._last_flush = time.monotonic()
@@ -190,11 +197,34 @@ class ResumeLedger:
     def key(path: str | os.PathLike) -> str:
         return str(Path(path).resolve())
 
+    def row_key(self, image: str) -> str:
+        """The key of the input a CSV row names by ``image`` (the path as its run was given it).
+
+        A row written by a run from another working directory holds a path relative to *that*
+        directory: the ledger entry that recorded the same text gives its input.  Text no entry
+        (or more than one) recorded is resolved here, as :meth:`key` does.
+        """
+        if not hasattr(self, "_by_image"):
+            found: dict[str, set[str]] = {}
+            for k, e in self.entries.items():
+                if isinstance(e.get("image"), str):
+                    found.setdefault(e["image"], set()).add(k)
+            self._by_image = {t: next(iter(ks)) for t, ks in found.items() if len(ks) == 1}
+        return self._by_image.get(str(image)) or self.key(image)
+
+    def _stored(self, output: str | os.PathLike) -> str:
+        """An output as the ledger stores it: relative to the output folder when inside it."""
+        f = Path(output).resolve()
+        return f.relative_to(self.root).as_posix() if self.root in f.parents else str(f)
+
+    def _file(self, stored: str) -> Path:
+        return self.root / stored  # an absolute ``stored`` stays itself
+
     def is_done(self, path: str | os.PathLike, sha256: str, settings: str) -> bool:
         e = self.entries.get(self.key(path))
         return bool(
             e and e.get("sha256") == sha256 and e.get("settings") == settings and e.get("status") == "ok"
-            and all(Path(o).exists() for o in e.get("outputs", []))
+            and all(self._file(o).exists() for o in e.get("outputs", []))
         )
 
     def replace_outputs(self, path, outputs: list, out_dir: str | os.PathLike) -> list[Path]:
@@ -211,7 +241,7 @@ class ResumeLedger:
         keep = {Path(o).resolve() for o in outputs}
         gone = []
         for o in e.get("outputs", []):
-            f = Path(o).resolve()
+            f = self._file(o).resolve()
             if f not in keep and f.is_file() and root in f.parents:
                 f.unlink()
                 gone.append(f)
@@ -219,8 +249,10 @@ class ResumeLedger:
 
     def record(self, path, sha256: str, settings: str, outputs: list, status: str = "ok") -> None:
         self.entries[self.key(path)] = {
-            "sha256": sha256, "settings": settings, "outputs": [str(o) for o in outputs], "status": status,
+            "image": str(path), "sha256": sha256, "settings": settings,
+            "outputs": [self._stored(o) for o in outputs], "status": status,
         }
+        self.__dict__.pop("_by_image", None)
         self._dirty = True
         # rewriting the whole ledger after every item grows with the batch; every few seconds is
         # enough for a resume after a crash (at worst those seconds' items are redone)
