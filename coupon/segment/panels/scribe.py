@@ -62,6 +62,10 @@ COARSE_CELL_SHARE = 0.3
 #: are not measured anyway (the stations leave out ``end_mm`` at each end).
 SCRIBE_MARGIN_MM = 2.0
 
+#: A creep station is left out when its corroded zone comes this close (mm) to pixels not seen as
+#: coating (the margin above, masks, label boxes): the zone may go on beneath them.
+HIDDEN_REACH_MM = 0.5
+
 
 @dataclass(frozen=True)
 class ScribeResult:
@@ -369,7 +373,9 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
     """Find the scribe(s) on a rectified panel and measure the creepage.
 
     ``exclude``: pixels that are not coating (masks, label boxes), left out of the search and the
-    measurement, as is the outer :data:`SCRIBE_MARGIN_MM` of the grid.
+    measurement, as is the outer :data:`SCRIBE_MARGIN_MM` of the grid.  A station whose corroded
+    zone reaches such pixels (within :data:`HIDDEN_REACH_MM`) is not measured: the zone's edge
+    is hidden there, and the width up to the mask would read as too little creep.
 
     Returns an empty :class:`ScribeResult` (``found`` False) when no band of at
     least ``min_length_mm`` exists or ``mode`` is "none".
@@ -377,13 +383,16 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
     if settings.mode == "none":
         return ScribeResult(note="scribe search off")
     defect, metal = defect_map(model)
+    hidden = np.zeros(defect.shape, np.float32)  # 1 where the coating is not seen: margin, masks, labels
     m = int(round(SCRIBE_MARGIN_MM * px_per_mm))
     if m > 0:
-        for a in (defect, metal):
+        for a in (defect, metal, hidden):
             a[:m], a[-m:], a[:, :m], a[:, -m:] = 0, 0, 0, 0
+        hidden[:m], hidden[-m:], hidden[:, :m], hidden[:, -m:] = 1, 1, 1, 1
     if exclude is not None:
         defect[exclude] = 0
         metal[exclude] = 0
+        hidden[exclude] = 1
     want = {"line": 1, "x": 2}.get(settings.mode)
     lines = _find_lines(defect, px_per_mm, settings, want)
     if want and len(lines) != want:
@@ -403,6 +412,7 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
     offs = np.arange(-settings.search_mm, settings.search_mm + 1e-9, step)
     along = np.linspace(-0.4, 0.4, 5)
     stations, halves = [], []
+    n_hidden = 0
     for li, (p0, p1) in enumerate(lines):
         p0, p1 = np.asarray(p0, float), np.asarray(p1, float)
         length = float(np.linalg.norm(p1 - p0))
@@ -426,6 +436,10 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
                           borderValue=0).reshape(n_st, len(along), len(offs)).mean(axis=1)
         cores = cv2.remap(metal, map_x, map_y, cv2.INTER_LINEAR, borderMode=cv2.BORDER_CONSTANT,
                           borderValue=0).reshape(n_st, len(along), len(offs)).mean(axis=1)
+        # samples on or beside hidden pixels (any of the 5 lines along the station; off the grid counts)
+        veiled = cv2.remap(hidden, map_x, map_y, cv2.INTER_LINEAR, borderMode=cv2.BORDER_CONSTANT,
+                           borderValue=1).reshape(n_st, len(along), len(offs)).max(axis=1) > 0
+        reach = int(round(HIDDEN_REACH_MM / step))
         profs = np.array([np.convolve(pr, np.ones(3) / 3, "same") for pr in profs])
         mid = len(offs) // 2
         win = int(round((w / 2 + 1.0) / step))
@@ -437,12 +451,16 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
         # the corroded run of every station at once: the set sample nearest the line (the first on a
         # tie) and the run of set samples around it
         runs = _band_runs(closeds, mid, win)
-        for t, centre, prof, core, above, closed, run in zip(ts, centres, profs, cores, aboves, closeds, runs):
+        for t, centre, prof, core, above, closed, run, veil in zip(ts, centres, profs, cores, aboves, closeds, runs,
+                                                                   veiled):
             if run is None:
                 continue  # no corroded band here (a gap in the scribe)
             a_i, b_i = run
             if a_i == 0 or b_i == len(closed) - 1:
                 continue  # the zone reaches the search limit: not measurable here
+            if veil[max(0, a_i - reach):b_i + reach + 1].any():
+                n_hidden += 1
+                continue  # the zone runs into a mask, a label or the panel margin: its edge is hidden
             # sub-sample edges: where the profile crosses one half at the run's ends
             lo_i = a_i - (prof[a_i] - 0.5) / max(prof[a_i] - prof[a_i - 1], 1e-9)
             hi_i = b_i + (prof[b_i] - 0.5) / max(prof[b_i] - prof[b_i + 1], 1e-9)
@@ -466,5 +484,9 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
             })
             widest = max(widest, -left_edge, right_edge)
         halves.append(max(widest, w / 2) + 1.0)
+    note = "" if stations else "scribe found but no station could be measured"
+    if n_hidden:
+        note = (f"{note}; " if note else "") + (f"{n_hidden} station(s) left out: the corroded zone runs under "
+                                                "a mask, a label or the panel margin")
     return ScribeResult([(np.asarray(a).tolist(), np.asarray(b).tolist()) for a, b in lines], stations, halves,
-                        note="" if stations else "scribe found but no station could be measured")
+                        note=note)
