@@ -308,6 +308,30 @@ def test_identity_of_a_qr_code_against_the_layout_and_empty_layout_positions():
     assert identity_warnings("t.jpg", [{"position": float("nan"), "row": float("nan")}], layout) == []
 
 
+def test_no_panel_id_or_file_name_is_given_twice_in_a_photo():
+    from coupon.cli.panels import panel_identities
+
+    layout = {(1, 1): {"panel_id": "A-01", "system": "SysA", "replicate": "1"},
+              (1, 2): {"panel_id": "B-02", "system": "SysB", "replicate": "2"},
+              (1, 3): {"panel_id": "C/3", "system": "SysC", "replicate": "3"}}
+    pos = [(1, 1), (1, 2), (1, 3), (2, 1)]
+    # the QR code of A-01 is read in B-02's slot (panels swapped, B-02's own code unreadable): A-01 is the
+    # panel at R1C2; the panel at R1C1 keeps its position ID instead of a second A-01
+    ids = panel_identities(pos, {1: "A-01"}, layout)
+    assert [x["panel_id"] for x in ids] == ["R1C1", "A-01", "C/3", "R2C1"]
+    assert ids[0]["id_source"] == "position" and "read at R1C2" in ids[0]["id_note"]
+    assert (ids[1]["system"], ids[1]["id_source"]) == ("SysA", "qr")
+    # one label copied onto two panels: each keeps the code plus its position, with a note
+    ids = panel_identities(pos, {0: "X-9", 3: "X-9"}, None)
+    assert [x["panel_id"] for x in ids] == ["X-9@R1C1", "R1C2", "R1C3", "X-9@R2C1"]
+    assert "read on 2 panels (also R2C1)" in ids[0]["id_note"]
+    # IDs that differ only in case or in characters a file name cannot hold: distinct file names
+    ids = panel_identities(pos, {0: "c_3", 3: "c/3"}, layout)
+    stems = [x["stem"] for x in ids]
+    assert len({t.lower() for t in stems}) == 4 and stems[1] == "B-02", stems
+    assert ids[2]["panel_id"] == "C/3" and ids[2]["stem"] == "C_3_R1C3"
+
+
 @pytest.mark.slow
 def test_an_image_without_exposure_time_is_named(runner, tray_file, tmp_path):
     import shutil

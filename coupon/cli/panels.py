@@ -251,6 +251,46 @@ def _qr_identity(text: str, position: tuple[int, int], layout: dict | None) -> d
     return out
 
 
+def panel_identities(positions: list[tuple[int, int]], qr_texts: dict[int, str], layout: dict | None) -> list[dict]:
+    """The identity of every panel of one photo (``positions[i]``: its row and column; ``qr_texts``:
+    panel index -> text of its QR code), with ``stem``, the name part of its output files.
+
+    By position, then the layout, then the panel's own QR code (:func:`_qr_identity`).  No ID is given
+    twice in a photo: a layout ID whose QR code is read on a panel in another slot is that panel's,
+    and the slot keeps its position ID; a code read on two panels (a copied label) gives each the code
+    plus its position.  ``id_note`` says so.  Stems are unique too, also where IDs differ only in case or
+    in characters a file name cannot hold (``A/1`` and ``A_1``): the position is added.
+    """
+    by_text: dict[str, list[int]] = {}
+    for i, text in qr_texts.items():
+        by_text.setdefault(text, []).append(i)
+    out = []
+    for i, (r, c) in enumerate(positions):
+        where = f"R{r}C{c}"
+        ident = {"panel_id": where, "id_source": "position", "system": "", "replicate": "", "id_note": ""}
+        if layout and (r, c) in layout:
+            ident.update(layout[(r, c)], id_source="layout")
+            owners = [j for j in by_text.get(ident["panel_id"], []) if j != i]
+            if owners and qr_texts.get(i) is None:
+                there = ", ".join("R{}C{}".format(*positions[j]) for j in owners)
+                ident.update(panel_id=where, id_source="position",
+                             id_note=f"the layout names {layout[(r, c)]['panel_id']} here, but its QR code is read at "
+                                     f"{there}; this panel keeps its position ID")
+        text = qr_texts.get(i)
+        if text is not None:
+            ident.update(_qr_identity(text, (r, c), layout))
+            if len(by_text[text]) > 1:
+                others = ", ".join("R{}C{}".format(*positions[j]) for j in by_text[text] if j != i)
+                note = f"QR code {text} is read on {len(by_text[text])} panels (also {others}); the ID adds the position"
+                ident.update(panel_id=f"{text}@{where}",
+                             id_note=f"{ident['id_note']}; {note}" if ident["id_note"] else note)
+        out.append(ident)
+    stems = [_safe(x["panel_id"]).lower() for x in out]
+    for x, stem, (r, c) in zip(out, stems, positions):
+        x["stem"] = _safe(x["panel_id"]) + (f"_R{r}C{c}" if stems.count(stem) > 1 else "")
+    return out
+
+
 def _safe(text: str) -> str:
     return re.sub(r"[^A-Za-z0-9._-]+", "_", text).strip("_") or "panel"
 
@@ -310,8 +350,10 @@ def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out
     inside = [q for q in quads if q.touches is None]
     median_area = float(np.median([q.area_px2 for q in inside])) if len(inside) >= 3 else None
 
+    idents = panel_identities([q.position for q in quads], {i: t for i, (t, _) in qr.items()}, layout)
+
     def one(i: int) -> dict:
-        return _rate_quad(path, img.sha256, pixels, quads[i], qr.get(i), settings, profile, out_dir, layout,
+        return _rate_quad(path, img.sha256, pixels, quads[i], qr.get(i), settings, profile, out_dir, idents[i],
                           exposure_h, px_scale, median_area, img.chroma_subsampling or "", name or path.stem)
 
     threads = min(panel_threads(), len(quads))
@@ -322,15 +364,13 @@ def rate_image(path: Path, settings: PanelSettings, profile: Profile | None, out
 
 
 def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings: PanelSettings,
-               profile: Profile | None, out_dir: Path, layout: dict | None, exposure_h: float | None,
+               profile: Profile | None, out_dir: Path, ident: dict, exposure_h: float | None,
                px_scale: float | None, median_area: float | None, chroma: str = "", name: str = "") -> dict:
-    """The CSV row of one found panel (rectify, rate, overlay, JSON); ``qr_hit`` is (text, corners) or None."""
+    """The CSV row of one found panel (rectify, rate, overlay, JSON); ``qr_hit`` is (text, corners) or None,
+    ``ident`` its entry of :func:`panel_identities`."""
     r, c = q.position
-    ident = {"panel_id": f"R{r}C{c}", "id_source": "position", "system": "", "replicate": ""}
-    if layout and (r, c) in layout:
-        ident.update(layout[(r, c)], id_source="layout")
-    if qr_hit is not None:
-        ident.update(_qr_identity(qr_hit[0], (r, c), layout))
+    ident = dict(ident)
+    file_part = ident.pop("stem")
     centre = q.centre_xy
     row = _empty_row(str(path), "ok") | ident | {
         "position": f"R{r}C{c}", "row": r, "col": c,
@@ -359,7 +399,7 @@ def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings:
         if np.all(hi > 0) and np.all(lo < panel.size_mm):
             boxes.append((lo[0], lo[1], hi[0], hi[1]))
     res = rate_panel(panel, settings, profile.colour if profile is not None else None, boxes)
-    stem = f"{name or path.stem}_{_safe(row['panel_id'])}"
+    stem = f"{name or path.stem}_{file_part}"
     overlay = out_dir / "overlays" / f"{stem}.png"
     name_pos = row["panel_id"] if row["panel_id"] == row["position"] else f"{row['panel_id']} {row['position']}"
     title = (f"{name_pos}  rust {res['rust_area_pct']:.2f} %  "
