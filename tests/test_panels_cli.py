@@ -82,6 +82,10 @@ def test_end_to_end_outputs(runner, tray_file, tmp_path):
         ["rack2_0240h_R1C1.json", "rack2_0240h_R1C2.json"]
     assert sorted(p.name for p in (tmp_path / "out" / "overlays").glob("*.png")) == \
         ["rack2_0240h_R1C1.png", "rack2_0240h_R1C2.png"]
+    # the next inspection's photo added to the manifest: this image keeps its time, so it is not redone
+    man.write_text(f"image,exposure_h\n{path.name},504\nrack2_0672h.jpg,672\n")
+    res5 = invoke(runner, ["panels", path, "--out", tmp_path / "out", "--manifest", man, "--no-qr"])
+    assert res5.exit_code == 0 and "already rated" in res5.output, res5.output
 
 
 # a position named twice; a panel_id named twice (two positions with one ID would write one overlay and one
@@ -236,9 +240,32 @@ def test_manifest_refuses_negative_and_conflicting_hours(runner, tmp_path):
     man.write_text("image,exposure_h\na.png,-3\n")
     res = invoke(runner, ["panels", img, "--out", tmp_path / "out", "--manifest", man])
     assert res.exit_code == 2 and "line 2: exposure_h of a.png is -3" in res.output
-    man.write_text("image,exposure_h\na.png,168\nb.png,5\nsub/a.png,336\n")
+    man.write_text("image,exposure_h\na.png,168\nb.png,5\na.png,336\n")
     res = invoke(runner, ["panels", img, "--out", tmp_path / "out", "--manifest", man])
     assert res.exit_code == 2 and "line 4: a.png is listed again with another exposure_h (168 and 336 h)" in res.output
+    man.write_text("image,exposure_h\nday1/a.png,168\nday1\\a.png,336\n")  # the same file, typed two ways
+    res = invoke(runner, ["panels", img, "--out", tmp_path / "out", "--manifest", man])
+    assert res.exit_code == 2 and "line 3: day1/a.png is listed again (as day1/a.png)" in res.output
+
+
+def test_manifest_entries_with_folders_and_windows_separators(tmp_path, monkeypatch):
+    from pathlib import Path
+
+    from coupon.cli.panels import read_manifest
+
+    for d in ("day1", "day2"):
+        (tmp_path / d).mkdir()
+    man = tmp_path / "m.csv"
+    man.write_text("image,exposure_h\nday1/tray.jpg,168\nday2\\tray.jpg,336\n"
+                   "C:\\lab\\photos\\rack3_final.jpg,1000\nother.jpg,48\n")
+    m = read_manifest(man)
+    monkeypatch.chdir(tmp_path / "day2")  # entries are relative to the manifest's folder, not the working one
+    # one file name in two folders: each folder's own time, never the other's
+    assert m.hours_for(Path("../day1/tray.jpg")) == 168 and m.hours_for(Path("tray.jpg")) == 336
+    assert m.hours_for(tmp_path / "elsewhere" / "tray.jpg") is None  # tray.jpg alone is ambiguous
+    # a Windows path from the computer that wrote the manifest: matched by its file name
+    assert m.hours_for(tmp_path / "rack3_final.jpg") == 1000
+    assert m.hours_for(tmp_path / "x" / "other.jpg") == 48  # a bare name matches in any folder
 
 
 def test_empty_folder_and_an_edge_band_that_leaves_nothing(runner, tmp_path):

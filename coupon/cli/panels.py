@@ -113,8 +113,26 @@ def read_layout(path: Path) -> dict[tuple[int, int], dict]:
     return out
 
 
-def read_manifest(path: Path) -> dict[str, float]:
-    """Manifest CSV (image, exposure_h) -> {file name: hours}."""
+@dataclass(frozen=True)
+class Manifest:
+    """Exposure times of a manifest CSV: by the image's resolved path, and by its bare file name."""
+
+    by_path: dict[str, float]
+    by_name: dict[str, float]
+
+    def hours_for(self, path: Path) -> float | None:
+        hit = self.by_path.get(ResumeLedger.key(path))
+        return hit if hit is not None else self.by_name.get(path.name)
+
+
+def read_manifest(path: Path) -> Manifest:
+    """Manifest CSV (image, exposure_h).
+
+    An ``image`` with a folder (``dayA/tray.jpg``, relative to the manifest's own folder, or absolute;
+    ``/`` or ``\\`` between the parts) matches that file; one given as a bare file name matches an image
+    of that name wherever it lies.  A folder path that matches no file here (a manifest written on
+    another computer) still matches by its file name when no other entry has that name with another time.
+    """
     from coupon.io.tables import numeric_columns, read_user_csv
 
     try:
@@ -125,17 +143,31 @@ def read_manifest(path: Path) -> dict[str, float]:
         hours = numeric_columns(table, ["exposure_h"], "manifest", path)["exposure_h"]
     except CouponError as exc:
         raise click.BadParameter(str(exc), param_hint="--manifest") from None
-    out: dict[str, float] = {}
+    by_path: dict[str, tuple[float, str]] = {}
+    bare: dict[str, float] = {}
+    names: dict[str, set[float]] = {}
     for line, (i, h) in enumerate(zip(table["image"], hours), start=2):
-        name = Path(str(i)).name
+        text = str(i).strip().replace("\\", "/")
+        name = Path(text).name
         if h < 0:
             raise click.BadParameter(f"{path} line {line}: exposure_h of {name} is {h:g}; exposure times are 0 or "
                                      "more hours", param_hint="--manifest")
-        if name in out and out[name] != h:
-            raise click.BadParameter(f"{path} line {line}: {name} is listed again with another exposure_h "
-                                     f"({out[name]:g} and {h:g} h); list each image once", param_hint="--manifest")
-        out[name] = float(h)
-    return out
+        h = float(h)
+        names.setdefault(name, set()).add(h)
+        if "/" not in text:
+            if name in bare and bare[name] != h:
+                raise click.BadParameter(f"{path} line {line}: {name} is listed again with another exposure_h "
+                                         f"({bare[name]:g} and {h:g} h); list each image once", param_hint="--manifest")
+            bare[name] = h
+            continue
+        key = ResumeLedger.key(text if Path(text).is_absolute() else path.parent / text)
+        if key in by_path and by_path[key][0] != h:
+            raise click.BadParameter(f"{path} line {line}: {text} is listed again (as {by_path[key][1]}) with another "
+                                     f"exposure_h ({by_path[key][0]:g} and {h:g} h); list each image once",
+                                     param_hint="--manifest")
+        by_path[key] = (h, text)
+    by_name = {n: next(iter(hs)) for n, hs in names.items() if len(hs) == 1} | bare
+    return Manifest({k: v[0] for k, v in by_path.items()}, by_name)
 
 
 def parse_mask(text: str) -> tuple:
@@ -445,13 +477,14 @@ class PanelsJob:
     out_dir: Path
     layout: dict | None
     hours: float | None
-    manifest: dict | None
+    manifest: Manifest | None
     max_pixels: int
     names: dict[str, str] | None = None  # image -> stem of its output files (output_names)
 
     def exposure_for(self, path: Path) -> float | None:
-        if self.manifest is not None and path.name in self.manifest:
-            return self.manifest[path.name]
+        hit = self.manifest.hours_for(path) if self.manifest is not None else None
+        if hit is not None:
+            return hit
         if self.hours is not None:
             return self.hours
         return hours_from_name(path)
@@ -539,9 +572,8 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
     if not paths:
         raise click.BadParameter(f"no image files in {', '.join(map(str, images))} (looked for "
                                  f"{', '.join(sorted(IMAGE_SUFFIXES))})", param_hint="IMAGES")
-    digest = settings_hash({"settings": settings.to_dict(), "profile": profile.sha256 if profile else None,
-                            "layout": layout and {f"{k}": v for k, v in layout.items()}, "hours": hours,
-                            "manifest": manifest, "command": "panels", "version": 1})
+    base = {"settings": settings.to_dict(), "profile": profile.sha256 if profile else None,
+            "layout": layout and {f"{k}": v for k, v in layout.items()}, "command": "panels", "version": 2}
     ledger = ResumeLedger(out_dir, "panels")
     table_path = out_dir / "panels.csv"
     old = read_previous(table_path, PANEL_COLUMNS, dtype={"panel_id": str})
@@ -556,11 +588,13 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
     shas = {str(p): try_sha256(p) for p in paths}
     names = output_names(paths, list(by_image), shas)
     job = PanelsJob(settings, profile, out_dir, layout, hours, manifest, int(max_megapixels * 1e6), names)
+    # per image: its own exposure time, so a manifest that grows by a day's photos redoes none of the others
+    digests = {str(p): settings_hash({**base, "exposure_h": job.exposure_for(p)}) for p in paths}
     failed = 0
     todo = []
     for p in paths:
         sha = shas[str(p)]
-        if not force and sha and ledger.is_done(p, sha, digest) and ResumeLedger.key(p) in by_image:
+        if not force and sha and ledger.is_done(p, sha, digests[str(p)]) and ResumeLedger.key(p) in by_image:
             click.echo(f"{p}: already rated (use --force to redo)")
             if not is_recorded(db, "panels", p, sha):  # a database added after the first run gets every image
                 failed += not record_rows(db, "panels", p, sha, db_settings, profile_sha,
@@ -586,7 +620,7 @@ def panels(images, out_dir, panel_size, edge_mm, masks, layout_path, qr, hours, 
                 sha = shas[str(out.item)] or file_sha256(out.item)  # hashed once, in the pre-scan
                 outputs = [r[k] for r in rows for k in ("overlay", "json") if isinstance(r.get(k), str)]
                 ledger.replace_outputs(out.item, outputs, out_dir)  # files of panel IDs this run no longer gives
-                ledger.record(out.item, sha, digest, outputs, "ok" if not bad else "partial")
+                ledger.record(out.item, sha, digests[str(out.item)], outputs, "ok" if not bad else "partial")
                 failed += not record_rows(db, "panels", out.item, sha, db_settings, profile_sha, {"panels": rows},
                                           exposure_h=job.exposure_for(out.item))
                 for r in rows:
