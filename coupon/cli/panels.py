@@ -414,7 +414,8 @@ def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings:
     }
     if q.touches is not None:
         row["status"] = (f"panel partly outside the frame (touches the {q.touches} edge); "
-                         "reframe so that every panel is wholly in the photo")
+                         "reframe so that every panel is wholly in the photo (the other panels' positions "
+                         "count this one: if it is background beyond the tray, they are shifted)")
         return row
     problem = check_panel_size(q, settings.size_mm, px_scale, median_area, settings.size_tolerance)
     if problem:
