@@ -148,7 +148,8 @@ def _unmix_whole_panel(lin, valid, px_per_mm):
     """The rust model computed on whole-panel arrays with plain numpy and OpenCV (no strips, no sparse
     statistics, one cone search per colour), as :func:`unmix` computed it before the strip-wise pass.
 
-    Returns (score, fraction, neutral_dev, light, rust_wins, noise_fraction).
+    Returns (score, fraction, neutral_dev, light, rust_wins, noise_fraction, best rust colour per pixel:
+    its index in RUST_ENDMEMBERS_SRGB at the rust pixels, -1 elsewhere).
     """
     import cv2
 
@@ -196,8 +197,10 @@ def _unmix_whole_panel(lin, valid, px_per_mm):
     fraction, score, wins = neutral_dev.copy(), np.zeros_like(a_n), np.zeros(a_n.shape, bool)
     cand = np.flatnonzero(dev.ravel() > floor)
     q = flat[cand] / light.ravel()[cand, None] - c.astype(np.float32)
-    bf, _ = best(q, np.einsum("ij,ij->i", q, q), R.RUST_WINS_RATIO * perp2.ravel()[cand] / light.ravel()[cand] ** 2)
+    bf, bk0 = best(q, np.einsum("ij,ij->i", q, q), R.RUST_WINS_RATIO * perp2.ravel()[cand] / light.ravel()[cand] ** 2)
     won = np.isfinite(bf)
+    kmap = np.full(a_n.shape, -1, np.int8)
+    kmap.ravel()[cand[won]] = bk0[won]
     wins.ravel()[cand[won]] = True
     fraction.ravel()[cand[won]] = bf[won]
     score.ravel()[cand[won]] = (dev.ravel()[cand[won]] - med) / max(sigma, 1e-4)
@@ -219,13 +222,14 @@ def _unmix_whole_panel(lin, valid, px_per_mm):
         f_l = (dy.ravel()[ids] - y_med) / d_y
         good = (f_l > 0) & (np.abs(d_y) > 2 * y_sig)
         ids, f_l = ids[good], f_l[good]
+        kmap.ravel()[ids] = kk[good]
         wins.ravel()[ids] = True
         fraction.ravel()[ids] = np.minimum(f_l, 1.0)
         score.ravel()[ids] = np.minimum(np.abs(dy.ravel()[ids] - y_med) / y_sig,
                                         (dev_b.ravel()[ids] - b_med) / b_sig)
     clean = np.flatnonzero(valid & ~wins & (dev <= floor))
     noise = robust(fraction.ravel()[clean[:: max(1, clean.size // R._SAMPLE_PX)]])[1]
-    return score, fraction, neutral_dev, light, wins, noise
+    return score, fraction, neutral_dev, light, wins, noise, kmap
 
 
 @pytest.fixture(scope="module")
@@ -253,7 +257,7 @@ def test_strip_unmix_matches_the_whole_panel_computation(tray_panels):
     from coupon.segment.panels.rust import RustSettings, measure_rust, unmix
 
     for panel, valid in tray_panels:
-        score, fraction, neutral_dev, light, wins, noise = _unmix_whole_panel(panel.linear, valid, 10.0)
+        score, fraction, neutral_dev, light, wins, noise, kmap = _unmix_whole_panel(panel.linear, valid, 10.0)
         m = unmix(panel.linear, valid, 10.0)
         assert m.score.dtype == m.fraction.dtype == m.light.dtype == np.float32
         # float32 rounding of the same operations in another order: a pixel on a threshold may flip
@@ -276,8 +280,16 @@ def test_strip_unmix_matches_the_whole_panel_computation(tray_panels):
             wi = np.flatnonzero(wins)
             pn = np.ascontiguousarray((panel.linear.reshape(-1, 3)[wi] / light.ravel()[wi, None]).T)
             cone = (wi, R._cone_fraction(pn, m.coating_linear, [R._lin(e) for e in R.RUST_ENDMEMBERS_SRGB]))
-        ref = ColourModel(m.coating_linear, score, fraction, neutral_dev, light, wins, noise,
-                          coating_darker_than_rust=m.coating_darker_than_rust, cone_fraction=cone)
+        # the best rust colour of every rust pixel, as its lightness rank (0 the lightest rust colour)
+        rust_y = np.array([R._lin(e) @ R._LUMA for e in R.RUST_ENDMEMBERS_SRGB])
+        rank = np.argsort(np.argsort(-rust_y)).astype(np.int8)
+        wi = np.flatnonzero(wins)
+        ref_k = rank[kmap.ravel()[wi]]
+        both = np.isin(wi, m.rust_idx[same.ravel()[m.rust_idx]])
+        np.testing.assert_array_equal(m.rust_k[np.searchsorted(m.rust_idx, wi[both])], ref_k[both])
+        ref = ColourModel(m.coating_linear, score, fraction, neutral_dev, light, wins, noise, wi,
+                          coating_darker_than_rust=m.coating_darker_than_rust, cone_fraction=cone,
+                          rust_k=ref_k, n_rust=len(rust_y))
         a, b = measure_rust(m, valid, 10.0, RustSettings()), measure_rust(ref, valid, 10.0, RustSettings())
         assert a.rust_area_mm2 == pytest.approx(b.rust_area_mm2, rel=1e-3, abs=1e-3)
         assert abs(a.sites - b.sites) <= 1
@@ -497,7 +509,8 @@ def test_site_caches_and_sparse_candidates_change_nothing():
         assert m.rust_idx is not None
         np.testing.assert_array_equal(m.rust_idx, np.flatnonzero(m.rust_wins))
         plain = ColourModel(*[getattr(m, k) for k in ("coating_linear", "score", "fraction", "neutral_dev", "light",
-                                                      "rust_wins", "noise_fraction")])
+                                                      "rust_wins", "noise_fraction")],
+                            rust_k=m.rust_k, n_rust=m.n_rust)
         for low in (1.0, 2.0, 4.0):
             np.testing.assert_array_equal(_grow_candidates(m, valid, low), _grow_candidates(plain, valid, low))
         cache: dict = {}

@@ -321,8 +321,11 @@ def test_pinpoint_without_jpeg_on_dark_coating():
     assert res["rust_pixel_count_pct"] > 1.5 * tr["rust_area_pct"]
 
 
-def test_clean_panel_with_dirt_and_glare_rates_within_one_class_of_10():
-    img, truth = tray_scene([PanelSpec("white", (), dirt=True, glare=True)], seed=13,
+@pytest.mark.parametrize("seed", [1, 2, 3, 4, 5, 6, 13])
+def test_clean_panel_with_dirt_and_glare_rates_within_one_class_of_10(seed):
+    # seeds 2, 5 and 6 read 0.052, 0.073 and 0.039 % (D610 8) before dark-core sites far from the other
+    # rust colours were left out (rust.LONE_CORE_NEAR_MM); now 0.000 to 0.023 % (grades 10 and 9)
+    img, truth = tray_scene([PanelSpec("white", (), dirt=True, glare=True)], seed=seed,
                             settings=TraySettings(image_wh=(700, 1000), cols=1))
     q = _only_panel(img)
     res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
