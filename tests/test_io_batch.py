@@ -66,3 +66,29 @@ def test_resume_ledger_does_not_depend_on_the_working_folder(tmp_path, monkeypat
     assert again.row_key("t.jpg") == str(tmp_path / "day" / "t.jpg")  # not recorded: resolved here
     (tmp_path / png).unlink()
     assert not again.is_done("t.jpg", "sha", "s")  # an output gone: redo
+
+
+def test_resume_ledger_keeps_the_texts_it_loaded_and_reads_entries_of_earlier_versions(tmp_path, monkeypatch):
+    import json
+
+    from coupon.io.batch import ResumeLedger
+
+    (tmp_path / "proj" / "imgs").mkdir(parents=True)
+    (tmp_path / "proj" / "out").mkdir()
+    monkeypatch.chdir(tmp_path / "proj")
+    led = ResumeLedger("out", "pits")
+    led.record("imgs/c.png", "sha", "s", [])
+    led.flush()
+    # a redo from the image folder records the image under its new text; the rows already in the CSV still
+    # carry the old text and must map to the same input (found in review: pits.csv kept both sets of rows)
+    monkeypatch.chdir(tmp_path / "proj" / "imgs")
+    again = ResumeLedger("../out", "pits")
+    again.record("c.png", "sha2", "s", [])
+    assert again.row_key("imgs/c.png") == again.key("c.png") == str(tmp_path / "proj" / "imgs" / "c.png")
+    # an entry written before the ledger recorded the image text: its outputs are relative to the working folder
+    monkeypatch.chdir(tmp_path / "proj")
+    (tmp_path / "proj" / "out" / "c_pits.png").write_bytes(b"png")
+    legacy = {str(tmp_path / "proj" / "imgs" / "c.png"): {"sha256": "sha", "settings": "s",
+                                                          "outputs": ["out/c_pits.png"], "status": "ok"}}
+    (tmp_path / "proj" / "out" / ".coupon" / "pits_done.json").write_text(json.dumps(legacy))
+    assert ResumeLedger("out", "pits").is_done("imgs/c.png", "sha", "s")

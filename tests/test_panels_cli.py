@@ -266,6 +266,12 @@ def test_manifest_entries_with_folders_and_windows_separators(tmp_path, monkeypa
     # a Windows path from the computer that wrote the manifest: matched by its file name
     assert m.hours_for(tmp_path / "rack3_final.jpg") == 1000
     assert m.hours_for(tmp_path / "x" / "other.jpg") == 48  # a bare name matches in any folder
+    # a folder entry that is a file here matches that file only: another folder's photo of that name is
+    # another photo (its time comes from --hours or its file name)
+    (tmp_path / "day1" / "only.jpg").write_bytes(b"")
+    man.write_text("image,exposure_h\nday1/only.jpg,168\n")
+    m = read_manifest(man)
+    assert m.hours_for(tmp_path / "day1" / "only.jpg") == 168 and m.hours_for(tmp_path / "day2" / "only.jpg") is None
 
 
 def test_empty_folder_and_an_edge_band_that_leaves_nothing(runner, tmp_path):

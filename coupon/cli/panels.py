@@ -153,20 +153,24 @@ def read_manifest(path: Path) -> Manifest:
             raise click.BadParameter(f"{path} line {line}: exposure_h of {name} is {h:g}; exposure times are 0 or "
                                      "more hours", param_hint="--manifest")
         h = float(h)
-        names.setdefault(name, set()).add(h)
         if "/" not in text:
+            names.setdefault(name, set()).add(h)
             if name in bare and bare[name] != h:
                 raise click.BadParameter(f"{path} line {line}: {name} is listed again with another exposure_h "
                                          f"({bare[name]:g} and {h:g} h); list each image once", param_hint="--manifest")
             bare[name] = h
             continue
         key = ResumeLedger.key(text if Path(text).is_absolute() else path.parent / text)
+        # by its file name too only when the path is not a file here (a manifest from another computer):
+        # an image of that name in another folder is another photo
+        names.setdefault(name, set()).add(h if not Path(key).exists() else np.nan)
         if key in by_path and by_path[key][0] != h:
             raise click.BadParameter(f"{path} line {line}: {text} is listed again (as {by_path[key][1]}) with another "
                                      f"exposure_h ({by_path[key][0]:g} and {h:g} h); list each image once",
                                      param_hint="--manifest")
         by_path[key] = (h, text)
-    by_name = {n: next(iter(hs)) for n, hs in names.items() if len(hs) == 1} | bare
+    by_name = {n: next(iter(hs)) for n, hs in names.items() if len(hs) == 1 and not np.isnan(next(iter(hs)))}
+    by_name |= bare
     return Manifest({k: v[0] for k, v in by_path.items()}, by_name)
 
 

@@ -192,6 +192,13 @@ class ResumeLedger:
             self.entries: dict[str, dict] = json.loads(self.path.read_text()) if self.path.exists() else {}
         except (json.JSONDecodeError, OSError):
             self.entries = {}
+        # the image texts of the entries as loaded: the command's CSV on disk was written with them (a
+        # run's own new rows are keyed by their resolved path directly, so records made now do not count)
+        found: dict[str, set[str]] = {}
+        for k, e in self.entries.items():
+            if isinstance(e, dict) and isinstance(e.get("image"), str):
+                found.setdefault(e["image"], set()).add(k)
+        self._by_image = {t: next(iter(ks)) for t, ks in found.items() if len(ks) == 1}
 
     @staticmethod
     def key(path: str | os.PathLike) -> str:
@@ -201,15 +208,9 @@ class ResumeLedger:
         """The key of the input a CSV row names by ``image`` (the path as its run was given it).
 
         A row written by a run from another working directory holds a path relative to *that*
-        directory: the ledger entry that recorded the same text gives its input.  Text no entry
-        (or more than one) recorded is resolved here, as :meth:`key` does.
+        directory: the ledger entry (as loaded) that recorded the same text gives its input.  Text no
+        entry (or more than one) recorded is resolved here, as :meth:`key` does.
         """
-        if not hasattr(self, "_by_image"):
-            found: dict[str, set[str]] = {}
-            for k, e in self.entries.items():
-                if isinstance(e.get("image"), str):
-                    found.setdefault(e["image"], set()).add(k)
-            self._by_image = {t: next(iter(ks)) for t, ks in found.items() if len(ks) == 1}
         return self._by_image.get(str(image)) or self.key(image)
 
     def _stored(self, output: str | os.PathLike) -> str:
@@ -217,14 +218,16 @@ class ResumeLedger:
         f = Path(output).resolve()
         return f.relative_to(self.root).as_posix() if self.root in f.parents else str(f)
 
-    def _file(self, stored: str) -> Path:
-        return self.root / stored  # an absolute ``stored`` stays itself
+    def _file(self, stored: str, entry: dict) -> Path:
+        """A stored output as a path: relative to the output folder, or (an entry written before the
+        ledger recorded ``image``) relative to the working folder, as those versions stored it."""
+        return self.root / stored if "image" in entry else Path(stored)  # an absolute one stays itself
 
     def is_done(self, path: str | os.PathLike, sha256: str, settings: str) -> bool:
         e = self.entries.get(self.key(path))
         return bool(
             e and e.get("sha256") == sha256 and e.get("settings") == settings and e.get("status") == "ok"
-            and all(self._file(o).exists() for o in e.get("outputs", []))
+            and all(self._file(o, e).exists() for o in e.get("outputs", []))
         )
 
     def replace_outputs(self, path, outputs: list, out_dir: str | os.PathLike) -> list[Path]:
@@ -241,7 +244,7 @@ class ResumeLedger:
         keep = {Path(o).resolve() for o in outputs}
         gone = []
         for o in e.get("outputs", []):
-            f = self._file(o).resolve()
+            f = self._file(o, e).resolve()
             if f not in keep and f.is_file() and root in f.parents:
                 f.unlink()
                 gone.append(f)
@@ -252,7 +255,6 @@ class ResumeLedger:
             "image": str(path), "sha256": sha256, "settings": settings,
             "outputs": [self._stored(o) for o in outputs], "status": status,
         }
-        self.__dict__.pop("_by_image", None)
         self._dirty = True
         # rewriting the whole ledger after every item grows with the batch; every few seconds is
         # enough for a resume after a crash (at worst those seconds' items are redone)

@@ -459,8 +459,11 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
             if a_i == 0 or b_i == len(closed) - 1:
                 continue  # the zone reaches the search limit: not measurable here
             if veil[max(0, a_i - reach):b_i + reach + 1].any():
+                # the zone runs into a mask, a label or the panel margin: its edge is hidden, so no creep
+                # is measured here; the zone seen so far still widens the corridor left out of the rating
                 n_hidden += 1
-                continue  # the zone runs into a mask, a label or the panel margin: its edge is hidden
+                widest = max(widest, -float(offs[a_i]), float(offs[b_i]))
+                continue
             # sub-sample edges: where the profile crosses one half at the run's ends
             lo_i = a_i - (prof[a_i] - 0.5) / max(prof[a_i] - prof[a_i - 1], 1e-9)
             hi_i = b_i + (prof[b_i] - 0.5) / max(prof[b_i] - prof[b_i + 1], 1e-9)
