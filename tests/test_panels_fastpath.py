@@ -228,7 +228,9 @@ def _unmix_whole_panel(lin, valid, px_per_mm):
         score.ravel()[ids] = np.minimum(np.abs(dy.ravel()[ids] - y_med) / y_sig,
                                         (dev_b.ravel()[ids] - b_med) / b_sig)
     clean = np.flatnonzero(valid & ~wins & (dev <= floor))
-    noise = robust(fraction.ravel()[clean[:: max(1, clean.size // R._SAMPLE_PX)]])[1]
+    refs = fraction.ravel()[clean[:: max(1, clean.size // R._SAMPLE_PX)]]
+    med_r = float(np.median(refs))  # the noise from the quieter side of the median (rust._robust_one_sided)
+    noise = 1.4826 * min(float(np.median(med_r - refs[refs < med_r])), float(np.median(refs[refs > med_r] - med_r)))
     return score, fraction, neutral_dev, light, wins, noise, kmap
 
 
@@ -524,18 +526,23 @@ def test_site_caches_and_sparse_candidates_change_nothing():
             assert a[3] == b[3]
 
 
-def test_defect_map_matches_the_whole_map_selection():
+def test_defect_map_matches_the_whole_map_selection(tray_panels):
     from coupon.segment.panels.rust import unmix
-    from coupon.segment.panels.scribe import defect_map
+    from coupon.segment.panels.scribe import defect_map, metal_scale
 
-    for panel, valid in _tray_panels_cache():
+    sides = set()
+    for panel, valid in tray_panels:
         m = unmix(panel.linear, valid, 10.0)
-        metal = np.clip((np.abs(m.neutral_dev) - np.float32(0.25)) * np.float32(4.0), 0, 1)
+        side, scale = metal_scale(m.coating_linear)
+        sides.add(side)
+        ev = np.abs(m.neutral_dev) if side == 0 else side * m.neutral_dev
+        metal = np.clip((ev / scale - 0.25) * 4.0, 0, 1)
         metal[m.rust_wins] = 0
         defect = np.where(m.rust_wins, np.clip(m.fraction, 0, 1), metal)
         got = defect_map(m)
-        np.testing.assert_array_equal(got[0], defect)
-        np.testing.assert_array_equal(got[1], metal)
+        np.testing.assert_allclose(got[0], defect, atol=1e-6)
+        np.testing.assert_allclose(got[1], metal, atol=1e-6)
+    assert sides == {-1, 1}  # white and grey lighter than bare steel, dark and green darker
 
 
 def test_light_field_from_the_two_channel_stack():

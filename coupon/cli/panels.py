@@ -55,7 +55,8 @@ from coupon.segment.panels.scribe import SCRIBE_MODES, ScribeSettings
 #: Columns of DIR/panels.csv (kept even when a batch finds nothing).
 PANEL_COLUMNS = [
     "image", "panel_id", "id_source", "system", "replicate", "position", "row", "col", "exposure_h",
-    "x_px", "y_px", "photo_px_per_mm", "chroma_subsampling", "rated_area_mm2", "rust_area_mm2", "rust_area_pct",
+    "x_px", "y_px", "photo_px_per_mm", "chroma_subsampling", "rated_area_mm2", "glare_excluded_mm2",
+    "rust_area_mm2", "rust_area_pct",
     "rust_area_pct_unc", "rust_sites",
     "rust_grade", "rust_distribution", "rust_grade_written", "ri_degree", "scribe_found", "scribe_kind",
     "creep_mean_mm", "creep_max_mm", "creep_min_mm", "creep_left_mean_mm", "creep_right_mean_mm",

@@ -14,6 +14,7 @@ from coupon.calibrate.colour import ColourCorrection, apply_linear
 from coupon.ratings.panel_ratings import distribution_letter, rust_grade, written_grade
 from coupon.ratings.scales import rate
 from coupon.segment.panels.detect import RectifiedPanel
+from coupon.segment.panels.glare import glare_mask
 from coupon.segment.panels.rust import RustSettings, measure_rust, unmix
 from coupon.segment.panels.scribe import ScribeSettings, measure_scribe
 
@@ -77,6 +78,12 @@ def rate_panel(panel: RectifiedPanel, settings: PanelSettings, colour: ColourCor
     # carried the scribe (and its zone left out of the rating) 20 mm past its end
     cut = ~base_mask(lin.shape[:2], s, 0.0, settings.masks_mm, label_boxes_mm) if (
         settings.masks_mm or label_boxes_mm) else None
+    # specular glare washes out the rust beneath it and looks like bare steel beside a scribe: left out
+    # of the rating like a mask (coupon.segment.panels.glare)
+    glare = glare_mask(model, rated0, s)
+    if glare.any():
+        rated0 = rated0 & ~glare
+        cut = glare if cut is None else (cut | glare)
     scribe = measure_scribe(model, s, panel.size_mm, settings.scribe, exclude=cut)
     rated = rated0 & ~scribe.corridor_mask(lin.shape[:2], s) if scribe.found else rated0
     rust = measure_rust(model, rated, s, settings.rust)
@@ -86,6 +93,7 @@ def rate_panel(panel: RectifiedPanel, settings: PanelSettings, colour: ColourCor
     creep_mean = scribe.creep_mean_mm
     return {
         "rated_area_mm2": rust.rated_area_mm2, "rust_area_mm2": rust.rust_area_mm2,
+        "glare_excluded_mm2": float(np.count_nonzero(glare)) / s**2,
         "rust_area_pct": rust.rust_area_pct, "rust_area_pct_unc": rust.rust_area_pct_unc,
         "rust_pixel_count_pct": rust.pixel_count_pct,
         "rust_sites": rust.sites, "rust_grade": grade, "rust_distribution": letter,

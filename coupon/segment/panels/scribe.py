@@ -23,6 +23,7 @@ import cv2
 import numpy as np
 from scipy import ndimage as ndi
 
+from coupon.calibrate import colourspace as cs
 from coupon.segment.panels.rust import ColourModel, _strips
 
 
@@ -48,6 +49,12 @@ SCRIBE_MODES = ("auto", "none", "line", "x")
 
 #: A piece of band shorter than this (mm) at the end of a scribe, behind a gap, is a rust spot.
 END_PIECE_MM = 8
+
+#: A scribe band is long and narrow: a line must be at least this many times as long as the mean width of
+#: the corroded zone measured at its stations.  A broad mark that is long enough, such as a glare patch of
+#: 42 x 25 mm on a green panel (ratio 2.7; read as a scribe with 7.6 mm creep before), is not a scribe; a
+#: 100 mm line keeps up to 12 mm of creep a side (coupon's choice).
+SCRIBE_MIN_ELONGATION = 4.0
 
 #: A second line (X scribe) must be at least this share as long as the first.
 SECOND_LINE_SHARE = 0.6
@@ -127,19 +134,55 @@ class ScribeResult:
         return mask.astype(bool)
 
 
+#: Bare steel in a scribe or a scraped creep zone: a mid grey (sRGB; coupon's reference, from memory:
+#: abraded carbon steel photographs as a neutral grey about half-way between black and white).  Only
+#: its lightness against the coating's is used: on which side of the coating bare steel lies, and how far.
+BARE_STEEL_SRGB = (0.5, 0.5, 0.5)
+
+#: A coating this many times lighter (or darker) than :data:`BARE_STEEL_SRGB` has steel on one side only.
+STEEL_SIDE_RATIO = 1.2
+
+
+def metal_scale(coating_linear: np.ndarray) -> tuple[int, float]:
+    """(side, scale) of the bare-steel evidence on a coating: ``metal = clip((side * neutral_dev / scale -
+    0.25) * 4, 0, 1)``.
+
+    ``neutral_dev`` is ``1 - b`` with ``b`` the pixel's brightness relative to the coating, so on a coating
+    lighter than steel (white, light colours) steel is darker (side +1) and a lighter mark (glare, a
+    reflection) is not steel; on a coating darker than steel (black, dark grey) steel is lighter (side -1)
+    and the scale is the whole way to steel's brightness (``b_s - 1``, about 13 on black): a soft glare
+    tail that lightens a black coating by half is not bare steel.  Between the two (mid greys, where steel
+    and coating look alike) both sides count, on the coating's own scale (side 0, scale 1), as before.
+    """
+    c = np.asarray(coating_linear, np.float64)
+    steel = cs.srgb_to_linear(np.asarray(BARE_STEEL_SRGB, np.float64))
+    b_s = float(steel @ c) / max(float(c @ c), 1e-12)  # steel's brightness along the coating colour
+    if b_s * STEEL_SIDE_RATIO < 1:
+        return 1, 1.0
+    if b_s > STEEL_SIDE_RATIO:
+        return -1, max(b_s - 1.0, 1.0)
+    return 0, 1.0
+
+
 def defect_map(model: ColourModel) -> tuple[np.ndarray, np.ndarray]:
-    """(defect, metal): rust fraction or bare-steel evidence in [0, 1], and the bare-steel part."""
+    """(defect, metal): rust fraction or bare-steel evidence in [0, 1], and the bare-steel part
+    (:func:`metal_scale`)."""
     # float32 in place: bare steel is a strong neutral deviation where no rust colour won.  Strip by
     # strip (STRIP_ROWS rows), so that a strip's four passes and its copy into the defect map run in
     # cache instead of five passes over 4.5 MB maps
+    side, scale = metal_scale(model.coating_linear)
     nd = model.neutral_dev
     metal = np.empty(nd.shape, np.float32)
     defect = np.empty(nd.shape, np.float32)
+    k = np.float32(4.0 / scale)
     for r0, r1 in _strips(nd.shape[0]):
         m = metal[r0:r1]
-        np.abs(nd[r0:r1], out=m, dtype=np.float32)
-        m -= np.float32(0.25)
-        m *= np.float32(4.0)  # / 0.25
+        if side == 0:
+            np.abs(nd[r0:r1], out=m, dtype=np.float32)
+        else:
+            np.multiply(nd[r0:r1], np.float32(side), out=m, dtype=np.float32)
+        m *= k  # / (0.25 scale)
+        m -= np.float32(1.0)
         np.clip(m, 0, 1, out=m)
         defect[r0:r1] = m
     # rust wins on a few per cent of a panel: the selection below touches only those pixels (a
@@ -183,7 +226,8 @@ def _projection_peaks(xy: np.ndarray, thetas: np.ndarray, bin_mm: float) -> np.n
     return out
 
 
-def _find_lines(defect: np.ndarray, px_per_mm: float, settings: ScribeSettings, want: int | None):
+def _find_lines(defect: np.ndarray, px_per_mm: float, settings: ScribeSettings, want: int | None,
+                hidden: np.ndarray | None = None):
     coarse = 2.0  # px/mm of the search
     f = coarse / px_per_mm
     # share of defect pixels per coarse cell: a thin band (a cut with little creep, 2 to 3 photo
@@ -206,7 +250,9 @@ def _find_lines(defect: np.ndarray, px_per_mm: float, settings: ScribeSettings, 
         # the longest projection at least 30 degrees from the lines found (the first on a tie)
         free = np.ones(len(thetas), bool)
         for t0, _ in found:
-            free &= ~(np.abs(np.angle(np.exp(2j * (thetas - t0)))) < np.deg2rad(30))
+            # the angle between two lines on the doubled angle (lines repeat every 180 degrees): 30 degrees
+            # apart is 60 there (it was compared with 30 once, which let a second line within 15 degrees)
+            free &= ~(np.abs(np.angle(np.exp(2j * (thetas - t0)))) < np.deg2rad(60))
         best = None
         if free.any():
             i = int(np.flatnonzero(free)[np.argmax(peaks[free])])
@@ -252,8 +298,18 @@ def _find_lines(defect: np.ndarray, px_per_mm: float, settings: ScribeSettings, 
         t = pts[near] @ u
         if t.size < 10:
             continue
-        # extent: longest run of 1 mm cells along the line that hold defect pixels (gaps <= 3 mm)
-        s0, s1 = _longest_run(np.floor(t - t.min()).astype(int), px_per_mm)
+        # extent: longest run of 1 mm cells along the line that hold defect pixels (gaps <= 3 mm, or
+        # hidden: a mask, a label or glare across the scribe does not cut it in two)
+        cells = np.floor(t - t.min()).astype(int)
+        bridge = None
+        if hidden is not None:
+            tc = t.min() + np.arange(int(cells.max()) + 1) + 0.5
+            xy_px = np.rint((rho * nrm[None, :] + tc[:, None] * u[None, :]) * px_per_mm - 0.5).astype(int)
+            inside = ((xy_px[:, 0] >= 0) & (xy_px[:, 0] < defect.shape[1]) & (xy_px[:, 1] >= 0)
+                      & (xy_px[:, 1] < defect.shape[0]))
+            bridge = np.zeros(len(tc), bool)
+            bridge[inside] = hidden[xy_px[inside, 1], xy_px[inside, 0]] > 0
+        s0, s1 = _longest_run(cells, px_per_mm, bridge=bridge)
         if s1 - s0 < settings.min_length_mm:
             continue
         t0, t1 = t.min() + s0, t.min() + s1 + 1
@@ -261,14 +317,16 @@ def _find_lines(defect: np.ndarray, px_per_mm: float, settings: ScribeSettings, 
     return lines
 
 
-def _longest_run(cells: np.ndarray, px_per_mm: float, share: float = 0.5, max_gap: int = 3) -> tuple[int, int]:
+def _longest_run(cells: np.ndarray, px_per_mm: float, share: float = 0.5, max_gap: int = 3,
+                 bridge: np.ndarray | None = None) -> tuple[int, int]:
     """First and last 1 mm cell of the longest chain of occupied cells along a line.
 
     A cell is occupied when it holds ``share * px_per_mm`` defect pixels.  Pieces of occupied cells
     join across gaps of up to ``max_gap`` cells (a stretch of cut without corrosion), but a short
     piece (under :data:`END_PIECE_MM`) at either end of a chain, behind a gap of 2 cells or more,
     is dropped: that is a rust spot just past the scribe end, and it would carry the scribe zone
-    (left out of the rust rating) over itself.
+    (left out of the rust rating) over itself.  ``bridge`` (per cell, optional): cells that cannot be
+    seen (masked, under glare); a gap of such cells joins its pieces whatever its length.
     """
     occ = np.bincount(cells) >= share * px_per_mm
     if not occ.any():
@@ -277,7 +335,10 @@ def _longest_run(cells: np.ndarray, px_per_mm: float, share: float = 0.5, max_ga
     pieces = list(zip(np.flatnonzero(edges == 1), np.flatnonzero(edges == -1) - 1))
     chains, cur = [], [pieces[0]]
     for pc in pieces[1:]:
-        if pc[0] - cur[-1][1] - 1 <= max_gap:
+        # the gap's cells that can be seen (not hidden) must be at most max_gap
+        gap = np.arange(cur[-1][1] + 1, pc[0])
+        seen = gap.size - (int(np.count_nonzero(bridge[np.minimum(gap, len(bridge) - 1)])) if bridge is not None else 0)
+        if seen <= max_gap:
             cur.append(pc)
         else:
             chains.append(cur)
@@ -394,7 +455,7 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
         metal[exclude] = 0
         hidden[exclude] = 1
     want = {"line": 1, "x": 2}.get(settings.mode)
-    lines = _find_lines(defect, px_per_mm, settings, want)
+    lines = _find_lines(defect, px_per_mm, settings, want, hidden)
     if want and len(lines) != want:
         return ScribeResult(note=f"expected {'one scribe line' if want == 1 else 'an X scribe'}, found {len(lines)} line(s)")
     if not lines:
@@ -413,6 +474,7 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
     along = np.linspace(-0.4, 0.4, 5)
     stations, halves = [], []
     n_hidden = 0
+    broad: list[int] = []
     for li, (p0, p1) in enumerate(lines):
         p0, p1 = np.asarray(p0, float), np.asarray(p1, float)
         length = float(np.linalg.norm(p1 - p0))
@@ -486,7 +548,21 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
                 "zone_width_mm": float(wc), "creep_mm": float(max(0.0, (wc - w) / 2)),
             })
             widest = max(widest, -left_edge, right_edge)
+        mine = [x["zone_width_mm"] for x in stations if x["line"] == li]
+        if mine and length < SCRIBE_MIN_ELONGATION * float(np.mean(mine)):
+            broad.append(li)  # a broad patch (glare, a stain) along a line, not a thin band
         halves.append(max(widest, w / 2) + 1.0)
+    if broad:
+        keep = [i for i in range(len(lines)) if i not in broad]
+        renum = {old: new for new, old in enumerate(keep)}
+        stations = [dict(x, line=renum[x["line"]]) for x in stations if x["line"] in renum]
+        lines, halves = [lines[i] for i in keep], [halves[i] for i in keep]
+        what = f"{len(broad)} broad patch(es) along a line, not a thin band"
+        if want and len(lines) != want:
+            return ScribeResult(note=f"expected {'one scribe line' if want == 1 else 'an X scribe'}, found "
+                                     f"{len(lines)} line(s) and {what}")
+        if not lines:
+            return ScribeResult(note=f"no scribe found ({what})")
     note = "" if stations else "scribe found but no station could be measured"
     if n_hidden:
         note = (f"{note}; " if note else "") + (f"{n_hidden} station(s) left out: the corroded zone runs under "
