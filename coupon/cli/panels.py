@@ -460,7 +460,7 @@ def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings:
         **{k: row[k] for k in PANEL_COLUMNS},
         "corners_xy": q.corners_xy.tolist(), "panel_size_mm": list(panel.size_mm),
         "coating_srgb": res["coating_srgb"], "coating_darker_than_rust": res["coating_darker_than_rust"],
-        "rust_pixel_count_pct": res["rust_pixel_count_pct"],
+        "rust_pixel_count_pct": res["rust_pixel_count_pct"], "glare_corrected_mm2": res["glare_corrected_mm2"],
         "scribe_lines_mm": scribe.lines, "creep_stations": scribe.stations, "scribe_note": scribe.note,
         "id_note": row.get("id_note", ""),
         "rust_site_area_mm2": res["_rust"].site_area_mm2.tolist(),

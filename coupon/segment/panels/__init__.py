@@ -74,13 +74,18 @@ def rate_panel(panel: RectifiedPanel, settings: PanelSettings, colour: ColourCor
     s = panel.px_per_mm
     rated0 = base_mask(lin.shape[:2], s, settings.edge_mm, settings.masks_mm, label_boxes_mm)
     model = unmix(lin, rated0, s)
+    # specular glare (white light added on top) washes out the rust beneath it and looks like bare steel
+    # beside a scribe: its light is estimated from the clean coating around it and taken off, and what
+    # still stands out afterwards is left out of the rating like a mask (coupon.segment.panels.glare)
+    patch, glare_light = glare_mask(model, rated0, s, light_too=True)
+    if glare_light is not None:
+        lin = np.clip(lin - glare_light[..., None], 0, 1).astype(np.float32)
+        model = unmix(lin, rated0, s)
     # masked areas and label boxes are not coating: a QR label's dark modules on the scribe's line
     # carried the scribe (and its zone left out of the rating) 20 mm past its end
     cut = ~base_mask(lin.shape[:2], s, 0.0, settings.masks_mm, label_boxes_mm) if (
         settings.masks_mm or label_boxes_mm) else None
-    # specular glare washes out the rust beneath it and looks like bare steel beside a scribe: left out
-    # of the rating like a mask (coupon.segment.panels.glare)
-    glare = glare_mask(model, rated0, s)
+    glare = glare_mask(model, rated0, s) if glare_light is not None else patch
     if glare.any():
         rated0 = rated0 & ~glare
         cut = glare if cut is None else (cut | glare)
@@ -94,6 +99,7 @@ def rate_panel(panel: RectifiedPanel, settings: PanelSettings, colour: ColourCor
     return {
         "rated_area_mm2": rust.rated_area_mm2, "rust_area_mm2": rust.rust_area_mm2,
         "glare_excluded_mm2": float(np.count_nonzero(glare)) / s**2,
+        "glare_corrected_mm2": float(np.count_nonzero(patch)) / s**2,
         "rust_area_pct": rust.rust_area_pct, "rust_area_pct_unc": rust.rust_area_pct_unc,
         "rust_pixel_count_pct": rust.pixel_count_pct,
         "rust_sites": rust.sites, "rust_grade": grade, "rust_distribution": letter,
