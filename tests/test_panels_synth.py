@@ -499,7 +499,9 @@ def test_glare_is_taken_off_before_rating(coating, scribe):
     if tc is not None:
         assert res["scribe_kind"] == "x"
         assert abs(res["creep_mean_mm"] - tc["creep_mean_mm"]) <= 0.3, (coating, res["creep_mean_mm"], tc)
-    assert 50 < res["glare_corrected_mm2"] < 2000  # the patch, not the panel
+    # the patch, not the panel; on white the highlight clips at the coating's own white and stays a plateau
+    # (no peak to find), and there it washes out little (rust as above)
+    assert 50 < res["glare_corrected_mm2"] < 2000 or coating == "white"
     assert res["glare_excluded_mm2"] <= res["glare_corrected_mm2"]
 
 
@@ -510,3 +512,23 @@ def test_no_glare_is_found_where_there_is_none(coating):
     # light field, fitted with the rust in, sagged under the X)
     res, _ = _rated_with_glare(coating, False, "x")
     assert res["glare_excluded_mm2"] == res["glare_corrected_mm2"] == 0
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("spec", [PanelSpec("dark", (), scribe="x", creep_mm=0.0),
+                                  PanelSpec("dark", (), scribe="line", creep_mm=0.5),
+                                  PanelSpec("dark", ("spots",), dirt=True),
+                                  PanelSpec("green", (), scribe="x", creep_mm=0.0)],
+                         ids=["dark-fresh-x", "dark-line-0.5", "dark-dirt", "green-fresh-x"])
+def test_bright_thin_or_flat_marks_are_not_glare(spec):
+    # found in review: a scribe's bare-steel core (14 times as bright as a black coating) and lighter dirt
+    # smudges on a dark panel were read as glare, and the scribe was then lost.  Glare is an even, peaked
+    # patch (glare.GLARE_MAX_BLOCK_CV, GLARE_MIN_PEAKEDNESS)
+    img, truth = tray_scene([spec], seed=3, settings=TraySettings(image_wh=(900, 1300), cols=1))
+    q = _only_panel(img)
+    res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
+    assert res["glare_corrected_mm2"] == res["glare_excluded_mm2"] == 0
+    tc = truth_creep(truth["panels"][0])
+    assert res["scribe_found"] == (tc is not None)
+    if tc is not None:
+        assert abs(res["creep_mean_mm"] - tc["creep_mean_mm"]) <= 0.3

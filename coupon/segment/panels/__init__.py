@@ -85,7 +85,8 @@ def rate_panel(panel: RectifiedPanel, settings: PanelSettings, colour: ColourCor
     # carried the scribe (and its zone left out of the rating) 20 mm past its end
     cut = ~base_mask(lin.shape[:2], s, 0.0, settings.masks_mm, label_boxes_mm) if (
         settings.masks_mm or label_boxes_mm) else None
-    glare = glare_mask(model, rated0, s) if glare_light is not None else patch
+    # what still stands out after the correction, within the corrected patch only
+    glare = (glare_mask(model, rated0, s) & patch) if glare_light is not None else patch
     if glare.any():
         rated0 = rated0 & ~glare
         cut = glare if cut is None else (cut | glare)

@@ -30,6 +30,13 @@ GLARE_MIN_REL = 0.10
 GLARE_MIN_ABS = 0.015
 #: Glare patches smaller than this (mm2) are left alone (a bright fleck, a reflection off a rust crust).
 GLARE_MIN_AREA_MM2 = 12.0
+#: Glare is smooth: within a 2 mm block its light is nearly even.  A block whose excess brightness varies
+#: more than this (standard deviation over mean) holds a sharp bright structure: the bare-steel core of a
+#: scribe (a quarter of the block lit up 14 times on a black coating; about 1.7), the edge of a mark.
+GLARE_MAX_BLOCK_CV = 1.0
+#: ... and it peaks: a patch's brightest block is at least this many times its mean excess.  A plateau
+#: (a lighter smudge of dirt on a dark coating, a band of even brightness along a scraped zone) is not glare.
+GLARE_MIN_PEAKEDNESS = 1.5
 #: The patch is grown by this much (mm): its soft tail.
 GLARE_GROW_MM = 2.0
 
@@ -48,13 +55,16 @@ def glare_mask(model: ColourModel, valid: np.ndarray, px_per_mm: float, light_to
     ok = valid & ~model.rust_wins
     okf = ok.astype(np.float32)
     # relative excess of the brightness over the light field: -neutral_dev (1 - b, b = brightness / field)
-    excess = np.clip(-model.neutral_dev, -1.0, 10.0)
-    small = cv2.resize(cv2.merge([excess * okf, okf, model.light]), size, interpolation=cv2.INTER_AREA)
-    e_sum, w, light = small[..., 0], small[..., 1], small[..., 2]
+    # (clipped far out: on a black coating glare of 0.35 is 23 times the coating's own brightness)
+    excess = np.clip(-model.neutral_dev, -1.0, 200.0)
+    ex_ok = excess * okf
+    small = cv2.resize(cv2.merge([ex_ok, okf, model.light, ex_ok * excess]), size, interpolation=cv2.INTER_AREA)
+    e_sum, w, light, e2_sum = small[..., 0], small[..., 1], small[..., 2], small[..., 3]
     seen = w > 0.5
     if np.count_nonzero(seen) < 12:
         return _none(valid.shape, light_too)
     rel = np.where(seen, e_sum / np.maximum(w, 1e-6), 0.0)
+    spread = np.sqrt(np.maximum(np.where(seen, e2_sum / np.maximum(w, 1e-6), 0.0) - rel**2, 0.0))
     # against a robust quadratic of the clean coating's own brightness: the light field was fitted with the
     # rust pixels in (a wide scribe zone pulls it down, and the coating beside it would look lit up)
     rr, cc = np.nonzero(seen)
@@ -72,13 +82,20 @@ def glare_mask(model: ColourModel, valid: np.ndarray, px_per_mm: float, light_to
     over = np.zeros(rel.shape)
     over[seen] = res
     y_c = float(np.asarray(model.coating_linear, np.float64) @ _LUMA)
-    flag = (seen & (over > GLARE_MIN_REL) & (over * light * y_c > GLARE_MIN_ABS)).astype(np.uint8)
+    flag = (seen & (over > GLARE_MIN_REL) & (over * light * y_c > GLARE_MIN_ABS)
+            & (spread < GLARE_MAX_BLOCK_CV * np.maximum(rel, 1e-6))).astype(np.uint8)
     if not flag.any():
         return _none(valid.shape, light_too)
     n, lab, stats, _ = cv2.connectedComponentsWithStats(flag, connectivity=8)
     block_mm2 = (cols / size[0] / px_per_mm) * (rows / size[1] / px_per_mm)
     big = np.zeros(n, np.uint8)
     big[1:] = stats[1:, cv2.CC_STAT_AREA] * block_mm2 >= GLARE_MIN_AREA_MM2
+    # a peak, not a plateau: the brightest block against the patch's mean excess
+    on = lab.ravel() > 0
+    peak = np.zeros(n)
+    np.maximum.at(peak, lab.ravel()[on], over.ravel()[on])
+    mean = np.bincount(lab.ravel()[on], weights=over.ravel()[on], minlength=n) / np.maximum(stats[:, cv2.CC_STAT_AREA], 1)
+    big[1:] &= (peak[1:] >= GLARE_MIN_PEAKEDNESS * mean[1:]).astype(np.uint8)
     flag = big[lab]
     if not flag.any():
         return _none(valid.shape, light_too)
