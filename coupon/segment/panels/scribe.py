@@ -337,7 +337,7 @@ def _longest_run(cells: np.ndarray, px_per_mm: float, share: float = 0.5, max_ga
     for pc in pieces[1:]:
         # the gap's cells that can be seen (not hidden) must be at most max_gap
         gap = np.arange(cur[-1][1] + 1, pc[0])
-        seen = gap.size - (int(np.count_nonzero(bridge[np.minimum(gap, len(bridge) - 1)])) if bridge is not None else 0)
+        seen = gap.size - (int(np.count_nonzero(bridge[gap])) if bridge is not None else 0)
         if seen <= max_gap:
             cur.append(pc)
         else:
@@ -433,7 +433,7 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
                    settings: ScribeSettings = ScribeSettings(), exclude: np.ndarray | None = None) -> ScribeResult:
     """Find the scribe(s) on a rectified panel and measure the creepage.
 
-    ``exclude``: pixels that are not coating (masks, label boxes), left out of the search and the
+    ``exclude``: pixels that are not coating (masks, label boxes, glare), left out of the search and the
     measurement, as is the outer :data:`SCRIBE_MARGIN_MM` of the grid.  A station whose corroded
     zone reaches such pixels (within :data:`HIDDEN_REACH_MM`) is not measured: the zone's edge
     is hidden there, and the width up to the mask would read as too little creep.
@@ -447,7 +447,7 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
     hidden = np.zeros(defect.shape, np.float32)  # 1 where the coating is not seen: margin, masks, labels
     m = int(round(SCRIBE_MARGIN_MM * px_per_mm))
     if m > 0:
-        for a in (defect, metal, hidden):
+        for a in (defect, metal):
             a[:m], a[-m:], a[:, :m], a[:, -m:] = 0, 0, 0, 0
         hidden[:m], hidden[-m:], hidden[:, :m], hidden[:, -m:] = 1, 1, 1, 1
     if exclude is not None:
