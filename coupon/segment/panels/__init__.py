@@ -90,7 +90,8 @@ def rate_panel(panel: RectifiedPanel, settings: PanelSettings, colour: ColourCor
     if glare.any():
         rated0 = rated0 & ~glare
         cut = glare if cut is None else (cut | glare)
-    scribe = measure_scribe(model, s, panel.size_mm, settings.scribe, exclude=cut)
+    scribe = measure_scribe(model, s, panel.size_mm, settings.scribe, exclude=cut,
+                            unsure=patch.astype(np.float32) if patch.any() else None)
     rated = rated0 & ~scribe.corridor_mask(lin.shape[:2], s) if scribe.found else rated0
     rust = measure_rust(model, rated, s, settings.rust)
     grade = rust_grade(rust.rust_area_pct)

@@ -430,13 +430,16 @@ def _station_maps(centres: np.ndarray, along: np.ndarray, offs: np.ndarray, u: n
 
 
 def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, float],
-                   settings: ScribeSettings = ScribeSettings(), exclude: np.ndarray | None = None) -> ScribeResult:
+                   settings: ScribeSettings = ScribeSettings(), exclude: np.ndarray | None = None,
+                   unsure: np.ndarray | None = None) -> ScribeResult:
     """Find the scribe(s) on a rectified panel and measure the creepage.
 
     ``exclude``: pixels that are not coating (masks, label boxes, glare), left out of the search and the
     measurement, as is the outer :data:`SCRIBE_MARGIN_MM` of the grid.  A station whose corroded
     zone reaches such pixels (within :data:`HIDDEN_REACH_MM`) is not measured: the zone's edge
-    is hidden there, and the width up to the mask would read as too little creep.
+    is hidden there, and the width up to the mask would read as too little creep.  ``unsure``: pixels
+    seen less well (glare taken off): measured, but a scribe's extent runs on across them as across
+    hidden ones (a glare patch washes the band out and would cut an X arm in two).
 
     Returns an empty :class:`ScribeResult` (``found`` False) when no band of at
     least ``min_length_mm`` exists or ``mode`` is "none".
@@ -455,7 +458,7 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
         metal[exclude] = 0
         hidden[exclude] = 1
     want = {"line": 1, "x": 2}.get(settings.mode)
-    lines = _find_lines(defect, px_per_mm, settings, want, hidden)
+    lines = _find_lines(defect, px_per_mm, settings, want, hidden if unsure is None else np.maximum(hidden, unsure))
     if want and len(lines) != want:
         return ScribeResult(note=f"expected {'one scribe line' if want == 1 else 'an X scribe'}, found {len(lines)} line(s)")
     if not lines:
