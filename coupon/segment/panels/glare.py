@@ -110,12 +110,13 @@ def glare_mask(model: ColourModel, valid: np.ndarray, px_per_mm: float, light_to
     g_per_rel = cn / max(float(np.sum(c / cn)), 1e-6)
     g = np.where(seen, np.clip(over, 0, None) * light * g_per_rel, 0).astype(np.float32)
     # beneath rust (blocks not seen) and between: filled from the seen blocks around them
-    hole = ((~seen) & (cv2.dilate(flag, np.ones((3, 3), np.uint8)) > 0)).astype(np.uint8)
+    near = cv2.dilate(flag, np.ones((3, 3), np.uint8))
+    hole = ((~seen) & (near > 0)).astype(np.uint8)
     if hole.any():
         scale = float(g.max()) or 1.0
         g = cv2.inpaint(np.clip(g / scale * 255, 0, 255).astype(np.uint8), hole, 3, cv2.INPAINT_TELEA
                         ).astype(np.float32) * (scale / 255)
-    g *= cv2.dilate(flag, np.ones((3, 3), np.uint8)).astype(np.float32)
+    g *= near.astype(np.float32)
     g = cv2.GaussianBlur(g, (0, 0), 1.0)
     return mask, cv2.resize(g, (cols, rows), interpolation=cv2.INTER_LINEAR)
 
