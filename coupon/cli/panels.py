@@ -146,7 +146,8 @@ def read_manifest(path: Path) -> Manifest:
         raise click.BadParameter(str(exc), param_hint="--manifest") from None
     by_path: dict[str, tuple[float, str]] = {}
     bare: dict[str, float] = {}
-    names: dict[str, set[float]] = {}
+    elsewhere: dict[str, set[float]] = {}  # folder entries that are no file here: their times by file name
+    here: set[str] = set()  # file names of folder entries that are files here (never matched by name)
     for line, (i, h) in enumerate(zip(table["image"], hours), start=2):
         text = str(i).strip().replace("\\", "/")
         name = Path(text).name
@@ -155,7 +156,6 @@ def read_manifest(path: Path) -> Manifest:
                                      "more hours", param_hint="--manifest")
         h = float(h)
         if "/" not in text:
-            names.setdefault(name, set()).add(h)
             if name in bare and bare[name] != h:
                 raise click.BadParameter(f"{path} line {line}: {name} is listed again with another exposure_h "
                                          f"({bare[name]:g} and {h:g} h); list each image once", param_hint="--manifest")
@@ -164,14 +164,16 @@ def read_manifest(path: Path) -> Manifest:
         key = ResumeLedger.key(text if Path(text).is_absolute() else path.parent / text)
         # by its file name too only when the path is not a file here (a manifest from another computer):
         # an image of that name in another folder is another photo
-        names.setdefault(name, set()).add(h if not Path(key).exists() else np.nan)
+        if Path(key).exists():
+            here.add(name)
+        else:
+            elsewhere.setdefault(name, set()).add(h)
         if key in by_path and by_path[key][0] != h:
             raise click.BadParameter(f"{path} line {line}: {text} is listed again (as {by_path[key][1]}) with another "
                                      f"exposure_h ({by_path[key][0]:g} and {h:g} h); list each image once",
                                      param_hint="--manifest")
         by_path[key] = (h, text)
-    by_name = {n: next(iter(hs)) for n, hs in names.items() if len(hs) == 1 and not np.isnan(next(iter(hs)))}
-    by_name |= bare
+    by_name = {n: next(iter(hs)) for n, hs in elsewhere.items() if len(hs) == 1 and n not in here} | bare
     return Manifest({k: v[0] for k, v in by_path.items()}, by_name)
 
 
