@@ -56,3 +56,19 @@ def test_cone_fraction_does_not_depend_on_rust_brightness():
 def test_cone_limit_is_the_pinpoint_limit():
     # CONE_MIN_SITE_MM2's note: the distribution letter's pinpoint limit
     assert CONE_MIN_SITE_MM2 == PINPOINT_MAX_MM2
+
+
+def test_light_field_is_not_pulled_by_a_zone_that_covers_most_of_the_panel():
+    # a white panel at 10 px/mm whose coating lies under a 10 % lighting gradient, with a dark corroded
+    # band over 60 % of it (an X scribe with 10 mm creep holds about that much): the light field must
+    # follow the coating, not the band (the coating's brightness is 1 by the definition of its colour).
+    # Reference: the gradient itself, computed here in closed form.
+    from coupon.segment.panels.rust import _smooth_light
+
+    rows, cols = 1500, 750
+    x = (np.arange(cols) + 0.5) / cols - 0.5
+    grad = np.broadcast_to((1.0 + 0.2 * x)[None, :], (rows, cols)).astype(np.float32)
+    alpha = grad.copy()
+    alpha[:, 150:600] *= 0.3  # the band: rust, a third as bright along the coating's colour
+    light = _smooth_light(alpha, np.ones((rows, cols), bool), 10.0)
+    assert np.abs(light / grad - 1).max() < 0.02
