@@ -349,8 +349,13 @@ def truth_rust(panel_truth: dict, edge_mm: float, scribe_margin_mm: float = 1.0)
             "rust_area_pct": 100.0 * rust_mm2 / rated_mm2 if rated_mm2 > 0 else float("nan")}
 
 
-def truth_creep(panel_truth: dict, end_mm: float = 10.0, crossing_mm: float = 10.0) -> dict | None:
-    """Mean, max and min creepage c = (c_left + c_right) / 2 over the stations ``coupon`` measures."""
+def truth_creep(panel_truth: dict, end_mm: float = 10.0, crossing_mm: float = 10.0,
+                reach_mm: float = 0.5) -> dict | None:
+    """Mean, max and min creepage c = (c_left + c_right) / 2 over the stations ``coupon`` measures.
+
+    On an X those leave out the stations within ``crossing_mm`` of the crossing and those whose corroded
+    zone (plus ``reach_mm``) comes nearer the other arm's line than its own: there the two zones merge.
+    """
     scribes = panel_truth["scribes"]
     if not scribes:
         return None
@@ -365,6 +370,17 @@ def truth_creep(panel_truth: dict, end_mm: float = 10.0, crossing_mm: float = 10
             p0, p1 = np.asarray(sc["start_mm"]), np.asarray(sc["end_mm"])
             pts = p0 + np.outer(t, (p1 - p0) / sc["length_mm"])
             keep &= np.linalg.norm(pts - cross, axis=1) > crossing_mm
+            other = scribes[1 - scribes.index(sc)]
+            q0, q1 = np.asarray(other["start_mm"]), np.asarray(other["end_mm"])
+            uq = (q1 - q0) / np.linalg.norm(q1 - q0)
+            u = (p1 - p0) / sc["length_mm"]
+            n, nq = np.array([-u[1], u[0]]), np.array([-uq[1], uq[0]])
+            half = sc["width_mm"] / 2 + reach_mm
+            frac = np.linspace(0.0, 1.0, 101)[None, :]
+            for side, creep in ((1.0, sc["creep_left_mm"]), (-1.0, sc["creep_right_mm"])):
+                offs = side * (half + creep)[:, None] * frac  # from the line out to the zone's edge
+                d_other = np.abs(((pts - q0) @ nq)[:, None] + float(n @ nq) * offs)
+                keep &= ~(d_other < np.abs(offs)).any(axis=1)
         vals.append(0.5 * (sc["creep_left_mm"][keep] + sc["creep_right_mm"][keep]))
     v = np.concatenate(vals)
     return {"creep_mean_mm": float(v.mean()), "creep_max_mm": float(v.max()), "creep_min_mm": float(v.min())}

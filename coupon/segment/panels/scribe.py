@@ -80,13 +80,17 @@ class ScribeResult:
 
     ``lines``: list of (start_xy_mm, end_xy_mm); ``stations``: one dict per
     station (line, t_mm, centre_xy_mm, normal_xy, left_mm, right_mm, creep_mm);
-    ``corridor_half_mm``: half width of the band left out of the rust rating.
+    ``corridor_half_mm``: half width of the band left out of the rust rating (its wider side);
+    ``corridor_sides_mm``: its reach on either side, (against the normal, along it) with the normal
+    ``(-u_y, u_x)`` of the line's direction ``u``: a zone that crept further on one side than on the other
+    (or a line found off the cut's centre, the middle of a wide zone) takes no more coating on the other.
     """
 
     lines: list = field(default_factory=list)
     stations: list = field(default_factory=list)
     corridor_half_mm: list = field(default_factory=list)
     note: str = ""
+    corridor_sides_mm: list = field(default_factory=list)
 
     @property
     def found(self) -> bool:
@@ -122,14 +126,16 @@ class ScribeResult:
     def corridor_mask(self, shape_rc, px_per_mm: float) -> np.ndarray:
         """Pixels of the scribe zones (left out of the rust rating)."""
         mask = np.zeros(shape_rc, np.uint8)
-        for (p0, p1), half in zip(self.lines, self.corridor_half_mm):
+        sides = self.corridor_sides_mm or [(h, h) for h in self.corridor_half_mm]
+        for (p0, p1), (h_neg, h_pos) in zip(self.lines, sides):
             p0, p1 = np.asarray(p0), np.asarray(p1)
             u = (p1 - p0) / np.linalg.norm(p1 - p0)
             a, b = p0 - 2 * u, p1 + 2 * u
-            n = np.array([-u[1], u[0]]) * max(half, 0.5 / px_per_mm)
+            n = np.array([-u[1], u[0]])
+            pos, neg = n * max(h_pos, 0.5 / px_per_mm), n * max(h_neg, 0.5 / px_per_mm)
             # square ends 2 mm past the scribe ends (round caps of the zone's half width would take
             # in rust beyond the ends of a wide corrosion zone)
-            quad = (np.array([a + n, b + n, b - n, a - n]) * px_per_mm - 0.5) * 16
+            quad = (np.array([a + pos, b + pos, b - neg, a - neg]) * px_per_mm - 0.5) * 16
             cv2.fillPoly(mask, [np.rint(quad).astype(np.int32).reshape(-1, 1, 2)], 1, lineType=cv2.LINE_8, shift=4)
         return mask.astype(bool)
 
@@ -246,7 +252,15 @@ def _find_lines(defect: np.ndarray, px_per_mm: float, settings: ScribeSettings, 
     # the peak of every angle's projection at once (the same bins as _projection, one bincount for all
     # 180 angles instead of one call per angle)
     peaks = _projection_peaks(xy, thetas, 0.5) / coarse  # pixels along the line at 2 px/mm: count / 2 = mm
+    taken = np.zeros(len(xy), bool)  # the cells of the bands found
     for _ in range(want or 2):
+        if taken.any():
+            # a second line from the cells outside the first band: a chord across a wide corroded zone
+            # (28 mm wide along a 100 mm line with 12 mm creep) with the rust beside it was long enough
+            # for an X arm (tenth session); an X's real second arm loses only its crossing
+            if np.count_nonzero(~taken) < 10:
+                break
+            peaks = _projection_peaks(xy[~taken], thetas, 0.5) / coarse
         # the longest projection at least 30 degrees from the lines found (the first on a tie)
         free = np.ones(len(thetas), bool)
         for t0, _ in found:
@@ -264,12 +278,23 @@ def _find_lines(defect: np.ndarray, px_per_mm: float, settings: ScribeSettings, 
         # fine angle: the projection of the band's own cells (within 3 mm of the coarse peak) is sharpest
         # when aligned with it; rust elsewhere on the panel (and, before SCRIBE_MARGIN_MM, the border)
         # would pull the angle its way
+        # the band: the bins around the peak above half its height, and 3 mm beyond.  A corroded zone
+        # 20 mm wide along a 100 mm scribe projects nearly as long at 10 degrees off (its diagonal), and
+        # the first angle on a tie was taken: the line ran across the zone and a chord of it was read as
+        # a second arm (tenth session).  Across the whole band the projection is sharpest along the zone.
         h0, lo0 = _projection(xy, wts, best[1], 0.5)
-        rho0 = lo0 + (int(np.argmax(h0)) + 0.5) * 0.5
-        near = np.abs(xy[:, 0] * np.cos(best[1]) + xy[:, 1] * np.sin(best[1]) - rho0) < 3.0
+        a0, b0 = _half_run(h0)
+        rho = xy[:, 0] * np.cos(best[1]) + xy[:, 1] * np.sin(best[1])
+        near = (rho > lo0 + a0 * 0.5 - 3.0) & (rho < lo0 + (b0 + 1) * 0.5 + 3.0)
+        taken |= near
         band, band_w = xy[near], wts[near]
-        fine = best[1] + np.deg2rad(np.arange(-1.5, 1.51, 0.1))
-        th = max(fine, key=lambda t: float((_projection(band, band_w, t, 0.25)[0] ** 2).sum()))
+        # tilt the band's width allows (the diagonal of its width over the line's length), at least 1.5 degrees
+        tilt = max(1.5, min(15.0, float(np.rad2deg(np.arctan2((b0 - a0 + 1) * 0.5, best[0])))))
+        sharp = lambda t: float((_projection(band, band_w, t, 0.25)[0] ** 2).sum())  # noqa: E731
+        th = best[1]
+        if tilt > 1.5:
+            th = max(best[1] + np.deg2rad(np.arange(-np.floor(tilt), np.floor(tilt) + 0.1, 1.0)), key=sharp)
+        th = max(th + np.deg2rad(np.arange(-1.5, 1.51, 0.1)), key=sharp)
         found.append((th, best[0]))
     lines = []
     if not found:
@@ -282,13 +307,7 @@ def _find_lines(defect: np.ndarray, px_per_mm: float, settings: ScribeSettings, 
         k = int(np.argmax(np.convolve(h, np.ones(5), "same")))
         # centre of the band: centroid of the bins above half the peak, contiguous with it
         hs = np.convolve(h, np.ones(5) / 5, "same")
-        above = hs > 0.5 * hs[k]
-        a = k
-        while a > 0 and above[a - 1]:
-            a -= 1
-        b = k
-        while b < len(hs) - 1 and above[b + 1]:
-            b += 1
+        a, b = _half_run(hs, k)
         idx = np.arange(a, b + 1)
         rho = lo + (np.sum(idx * hs[idx]) / np.sum(hs[idx]) + 0.5) * 0.1
         nrm = np.array([np.cos(th), np.sin(th)])
@@ -315,6 +334,14 @@ def _find_lines(defect: np.ndarray, px_per_mm: float, settings: ScribeSettings, 
         t0, t1 = t.min() + s0, t.min() + s1 + 1
         lines.append((rho * nrm + t0 * u, rho * nrm + t1 * u))
     return lines
+
+
+def _half_run(h: np.ndarray, k: int | None = None) -> tuple[int, int]:
+    """First and last bin of the run of bins above half of ``h[k]`` that holds bin ``k`` (default: the peak)."""
+    k = int(np.argmax(h)) if k is None else k
+    below = np.flatnonzero(~(h > 0.5 * h[k]))
+    left, right = below[below < k], below[below > k]
+    return (int(left[-1]) + 1 if left.size else 0), (int(right[0]) - 1 if right.size else len(h) - 1)
 
 
 def _longest_run(cells: np.ndarray, px_per_mm: float, share: float = 0.5, max_gap: int = 3,
@@ -475,22 +502,29 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
     step = 0.1
     offs = np.arange(-settings.search_mm, settings.search_mm + 1e-9, step)
     along = np.linspace(-0.4, 0.4, 5)
-    stations, halves = [], []
-    n_hidden = 0
+    stations, halves, sides = [], [], []
+    n_hidden = n_cross = 0
     broad: list[int] = []
     for li, (p0, p1) in enumerate(lines):
         p0, p1 = np.asarray(p0, float), np.asarray(p1, float)
         length = float(np.linalg.norm(p1 - p0))
         u = (p1 - p0) / length
         nrm = np.array([-u[1], u[0]])
+        # the measured stations, and every 1 mm of the ends left out, which only widen the corridor: the
+        # zone of a heavily crept X spread past the corridor of the measured stations at an arm's end
+        # (a sliver of 6.7 mm2 rated as rust, D610 7 on a panel with none; tenth session)
         ts = np.arange(settings.end_mm, length - settings.end_mm + 1e-9, 1.0)
-        widest = 0.0
+        tip = np.arange(1.0, min(settings.end_mm, length / 2) - 1e-9, 1.0)
+        ts = np.concatenate([tip, ts, length - tip[::-1]])
+        counts = (ts >= settings.end_mm - 1e-9) & (ts <= length - settings.end_mm + 1e-9)
+        reach_neg = reach_pos = 0.0  # the zone's reach against and along the normal
         centres = [p0 + t * u for t in ts]
         use = [crossing is None or np.linalg.norm(ctr - crossing) > settings.end_mm for ctr in centres]
-        ts = ts[np.asarray(use, bool)]
+        ts, counts = ts[np.asarray(use, bool)], counts[np.asarray(use, bool)]
         centres = np.array([ctr for ctr, ok in zip(centres, use) if ok]).reshape(-1, 2)
         if not len(ts):
-            halves.append(max(widest, w / 2) + 1.0)
+            halves.append(w / 2 + 1.0)
+            sides.append((w / 2 + 1.0, w / 2 + 1.0))
             continue
         # every station's strip sampled in one remap of the defect and one of the metal map (the same
         # bilinear samples as one remap per station, 0.1 ms of call overhead each saved), and the gap
@@ -505,6 +539,15 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
         veiled = cv2.remap(hidden, map_x, map_y, cv2.INTER_LINEAR, borderMode=cv2.BORDER_CONSTANT,
                            borderValue=1).reshape(n_st, len(along), len(offs)).max(axis=1) > 0
         reach = int(round(HIDDEN_REACH_MM / step))
+        # X scribe: samples nearer the other line than this one belong to the other arm's zone; near the
+        # crossing the two zones merge, and a zone reaching there has no edge of its own
+        foreign = None
+        if crossing is not None:
+            q0, q1 = (np.asarray(x, float) for x in lines[1 - li])
+            uq = (q1 - q0) / max(float(np.linalg.norm(q1 - q0)), 1e-9)
+            nq = np.array([-uq[1], uq[0]])
+            d_other = np.abs(((centres - q0) @ nq)[:, None] + float(nrm @ nq) * offs[None, :])
+            foreign = d_other < np.abs(offs)[None, :]
         profs = np.array([np.convolve(pr, np.ones(3) / 3, "same") for pr in profs])
         mid = len(offs) // 2
         win = int(round((w / 2 + 1.0) / step))
@@ -516,23 +559,36 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
         # the corroded run of every station at once: the set sample nearest the line (the first on a
         # tie) and the run of set samples around it
         runs = _band_runs(closeds, mid, win)
-        for t, centre, prof, core, above, closed, run, veil in zip(ts, centres, profs, cores, aboves, closeds, runs,
-                                                                   veiled):
+        for si, (t, centre, prof, core, above, closed, run, veil) in enumerate(zip(ts, centres, profs, cores, aboves,
+                                                                                 closeds, runs, veiled)):
             if run is None:
                 continue  # no corroded band here (a gap in the scribe)
             a_i, b_i = run
             if a_i == 0 or b_i == len(closed) - 1:
                 continue  # the zone reaches the search limit: not measurable here
+            if foreign is not None and foreign[si, max(0, a_i - reach):b_i + reach + 1].any():
+                # runs into the other arm's zone: no edge of its own on that side, whose run goes on across
+                # the other zone (the other arm's corridor covers it); the side away from it still widens
+                # the corridor (the notch between two arms: a sliver of zone was rated as rust)
+                n_cross += int(counts[si])
+                if not foreign[si, max(0, a_i - reach):mid].any():
+                    reach_neg = max(reach_neg, -float(offs[a_i]))
+                if not foreign[si, mid:b_i + reach + 1].any():
+                    reach_pos = max(reach_pos, float(offs[b_i]))
+                continue
             if veil[max(0, a_i - reach):b_i + reach + 1].any():
                 # the zone runs into a mask, a label or the panel margin: its edge is hidden, so no creep
                 # is measured here; the zone seen so far still widens the corridor left out of the rating
-                n_hidden += 1
-                widest = max(widest, -float(offs[a_i]), float(offs[b_i]))
+                n_hidden += int(counts[si])
+                reach_neg, reach_pos = max(reach_neg, -float(offs[a_i])), max(reach_pos, float(offs[b_i]))
                 continue
             # sub-sample edges: where the profile crosses one half at the run's ends
             lo_i = a_i - (prof[a_i] - 0.5) / max(prof[a_i] - prof[a_i - 1], 1e-9)
             hi_i = b_i + (prof[b_i] - 0.5) / max(prof[b_i] - prof[b_i + 1], 1e-9)
             left_edge, right_edge = offs[0] + lo_i * step, offs[0] + hi_i * step
+            reach_neg, reach_pos = max(reach_neg, -float(left_edge)), max(reach_pos, float(right_edge))
+            if not counts[si]:
+                continue  # an end station: the corridor only
             # scribe centre: a filled gap (uncorroded cut), else the bare-steel core, else the line
             c0 = 0.0
             gaps = closed[a_i:b_i + 1] & ~above[a_i:b_i + 1]
@@ -550,16 +606,16 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
                 "left_mm": float(max(0.0, c0 - left_edge - w / 2)), "right_mm": float(max(0.0, right_edge - c0 - w / 2)),
                 "zone_width_mm": float(wc), "creep_mm": float(max(0.0, (wc - w) / 2)),
             })
-            widest = max(widest, -left_edge, right_edge)
         mine = [x["zone_width_mm"] for x in stations if x["line"] == li]
         if mine and length < SCRIBE_MIN_ELONGATION * float(np.mean(mine)):
             broad.append(li)  # a broad patch (glare, a stain) along a line, not a thin band
-        halves.append(max(widest, w / 2) + 1.0)
+        sides.append((max(reach_neg, w / 2) + 1.0, max(reach_pos, w / 2) + 1.0))
+        halves.append(max(sides[-1]))
     if broad:
         keep = [i for i in range(len(lines)) if i not in broad]
         renum = {old: new for new, old in enumerate(keep)}
         stations = [dict(x, line=renum[x["line"]]) for x in stations if x["line"] in renum]
-        lines, halves = [lines[i] for i in keep], [halves[i] for i in keep]
+        lines, halves, sides = [lines[i] for i in keep], [halves[i] for i in keep], [sides[i] for i in keep]
         what = f"{len(broad)} broad patch(es) along a line, not a thin band"
         if want and len(lines) != want:
             return ScribeResult(note=f"expected {'one scribe line' if want == 1 else 'an X scribe'}, found "
@@ -570,5 +626,8 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
     if n_hidden:
         note = (f"{note}; " if note else "") + (f"{n_hidden} station(s) left out: the corroded zone runs under "
                                                 "a mask, a label or the panel margin")
+    if n_cross:
+        note = (f"{note}; " if note else "") + (f"{n_cross} station(s) near the crossing left out: the corroded "
+                                                "zone runs into the other arm's")
     return ScribeResult([(np.asarray(a).tolist(), np.asarray(b).tolist()) for a, b in lines], stations, halves,
-                        note=note)
+                        note=note, corridor_sides_mm=sides)
