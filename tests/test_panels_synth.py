@@ -534,11 +534,8 @@ def test_bright_thin_or_flat_marks_are_not_glare(spec):
         assert abs(res["creep_mean_mm"] - tc["creep_mean_mm"]) <= 0.3
 
 
-@pytest.mark.slow
-def test_an_x_arm_under_corrected_glare_is_not_cut_in_two():
-    # scene 8 of tests/studies/random_trays.py --seed 1: the grey panel's X arm under the glare was lost after
-    # the glare's light was taken off (the band there washed out, not hidden), and its corrosion zone was
-    # rated as rust: 3.6 % for 0.42 %, D610 4 for 6.  The scribe's extent now runs on across corrected glare.
+def _study_scene(seed: int, k: int):
+    """Scene ``k`` of ``tests/studies/random_trays.py --seed <seed>``: the image and its truth."""
     import importlib.util
     from pathlib import Path
 
@@ -546,10 +543,46 @@ def test_an_x_arm_under_corrected_glare_is_not_cut_in_two():
     spec = importlib.util.spec_from_file_location("random_trays", path)
     study = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(study)
-    rng = np.random.default_rng(1)
-    for _ in range(9):
-        specs, seed, st = study.random_scene(rng)
-    img, truth = tray_scene(specs, seed=seed, settings=st)
+    rng = np.random.default_rng(seed)
+    for _ in range(k + 1):
+        specs, scene_seed, st = study.random_scene(rng)
+    return tray_scene(specs, seed=scene_seed, settings=st)
+
+
+def _study_panels(img, truth, want):
+    """(truth panel, rate_panel result) of every found panel whose spec passes ``want``."""
+    centres = np.array([p["centre_img_xy"] for p in truth["panels"]])
+    out = []
+    for q in find_panels(img):
+        p = truth["panels"][int(np.argmin(np.linalg.norm(centres - q.centre_xy, axis=1)))]
+        if want(p["spec"]):
+            out.append((p, rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())))
+    return out
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("seed, k", [(2, 5), (3, 6)])
+def test_rust_spots_under_glare_on_grey(seed, k):
+    # grey panels with rust spots under a glare patch, from tests/studies/random_trays.py (seed 2 scene 5,
+    # seed 3 scene 6).  Before the tenth session the glare's estimated light was blurred by a whole 2 mm
+    # block, lost a fifth of its peak, and the rest washed the spots out (0.71 of the rust); on the second
+    # panel a cluster of spots 3 mm past a line scribe's end carried the line over itself (0.37 of the
+    # rust).  Tolerance: issue 3, rust within max(0.1 pp, 15 %) of the painted truth.
+    img, truth = _study_scene(seed, k)
+    rated = _study_panels(img, truth, lambda sp: sp.coating == "grey" and sp.glare and sp.rust == ("spots",))
+    assert rated
+    for p, res in rated:
+        tr = truth_rust(p, 5.0)["rust_area_pct"]
+        assert _rust_ok(res["rust_area_pct"], tr), (res["rust_area_pct"], tr)
+        assert res["glare_corrected_mm2"] > 0  # the glare was found and its light taken off
+
+
+@pytest.mark.slow
+def test_an_x_arm_under_corrected_glare_is_not_cut_in_two():
+    # scene 8 of tests/studies/random_trays.py --seed 1: the grey panel's X arm under the glare was lost after
+    # the glare's light was taken off (the band there washed out, not hidden), and its corrosion zone was
+    # rated as rust: 3.6 % for 0.42 %, D610 4 for 6.  The scribe's extent now runs on across corrected glare.
+    img, truth = _study_scene(1, 8)
     centres = np.array([p["centre_img_xy"] for p in truth["panels"]])
     checked = 0
     for q in find_panels(img):
@@ -590,3 +623,6 @@ def test_heavy_creep(coating, scribe, creep, kinds, seed):
     true_rating = int(rate("astm-d1654", tc["creep_mean_mm"]))
     assert abs(int(res["creep_rating"]) - true_rating) <= 1
     assert _rust_ok(res["rust_area_pct"], tr["rust_area_pct"]), (res["rust_area_pct"], tr["rust_area_pct"])
+    # grade within one class (issue 3; ASTM D610-08 Table 1 via coupon.ratings.scales): the zone past the
+    # corridor of an X with 10 mm creep read 0.063 % on a panel with no rust, grade 8 for 10 (review)
+    assert abs(int(res["rust_grade"]) - int(rust_grade(tr["rust_area_pct"]))) <= 1

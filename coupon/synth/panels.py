@@ -325,7 +325,7 @@ def truth_rust(panel_truth: dict, edge_mm: float, scribe_margin_mm: float = 1.0)
     """Rusted area and rated area of a synthetic panel, as ``coupon panels`` defines them.
 
     The rated area is the panel minus the edge band, the QR label box (plus 2 mm)
-    and the scribe corridors (scribe half width + largest creep + margin).
+    and the scribe corridors (scribe half width + largest creep of that side + margin, on each side).
     """
     cover = panel_truth["_rust_cover"]
     s = panel_truth["plane_px_per_mm"]
@@ -341,8 +341,10 @@ def truth_rust(panel_truth: dict, edge_mm: float, scribe_margin_mm: float = 1.0)
         u = (p1 - p0) / sc["length_mm"]
         t = (xx - p0[0]) * u[0] + (yy - p0[1]) * u[1]
         d = -(xx - p0[0]) * u[1] + (yy - p0[1]) * u[0]
-        half = sc["width_mm"] / 2 + max(sc["creep_left_mm"].max(), sc["creep_right_mm"].max()) + scribe_margin_mm
-        rated &= ~((np.abs(d) <= half) & (t >= -2) & (t <= sc["length_mm"] + 2))
+        # each side as far as its own largest creep (d >= 0 is the left of the line's direction)
+        half_l = sc["width_mm"] / 2 + sc["creep_left_mm"].max() + scribe_margin_mm
+        half_r = sc["width_mm"] / 2 + sc["creep_right_mm"].max() + scribe_margin_mm
+        rated &= ~((d <= half_l) & (-d <= half_r) & (t >= -2) & (t <= sc["length_mm"] + 2))
     rated_mm2 = float(rated.sum()) / s**2
     rust_mm2 = float(cover[rated].sum()) / s**2
     return {"rated_area_mm2": rated_mm2, "rust_area_mm2": rust_mm2,
@@ -363,14 +365,14 @@ def truth_creep(panel_truth: dict, end_mm: float = 10.0, crossing_mm: float = 10
     cross = None
     if len(scribes) == 2:
         cross = np.asarray(scribes[0]["start_mm"]) + 0.5 * (np.asarray(scribes[0]["end_mm"]) - np.asarray(scribes[0]["start_mm"]))
-    for sc in scribes:
+    for si, sc in enumerate(scribes):
         t = sc["station_t_mm"]
         keep = (t >= end_mm) & (t <= sc["length_mm"] - end_mm)
         if cross is not None:
             p0, p1 = np.asarray(sc["start_mm"]), np.asarray(sc["end_mm"])
             pts = p0 + np.outer(t, (p1 - p0) / sc["length_mm"])
             keep &= np.linalg.norm(pts - cross, axis=1) > crossing_mm
-            other = scribes[1 - scribes.index(sc)]
+            other = scribes[1 - si]
             q0, q1 = np.asarray(other["start_mm"]), np.asarray(other["end_mm"])
             uq = (q1 - q0) / np.linalg.norm(q1 - q0)
             u = (p1 - p0) / sc["length_mm"]

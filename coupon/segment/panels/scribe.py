@@ -47,8 +47,12 @@ class ScribeSettings:
 
 SCRIBE_MODES = ("auto", "none", "line", "x")
 
-#: A piece of band shorter than this (mm) at the end of a scribe, behind a gap, is a rust spot.
+#: A piece of band shorter than this (mm) at the end of a scribe, behind a gap, is a rust spot ...
 END_PIECE_MM = 8
+#: ... as is one shorter than this share of the whole chain: a cluster of spots 9 mm long, 3 mm past the end
+#: of a 100 mm line, carried the line (and its corridor, left out of the rating) over itself, and the
+#: panel read 0.37 of its rust (tenth session's randomised trays, seed 3 scene 6).
+END_PIECE_SHARE = 0.12
 
 #: A scribe band is long and narrow: a line must be at least this many times as long as the mean width of
 #: the corroded zone measured at its stations.  A broad mark that is long enough, such as a glare patch of
@@ -373,9 +377,10 @@ def _longest_run(cells: np.ndarray, px_per_mm: float, share: float = 0.5, max_ga
     chains.append(cur)
     best = (0, 0)
     for ch in chains:
-        while len(ch) > 1 and ch[-1][1] - ch[-1][0] + 1 < END_PIECE_MM and ch[-1][0] - ch[-2][1] - 1 >= 2:
+        short = max(END_PIECE_MM, END_PIECE_SHARE * (ch[-1][1] - ch[0][0] + 1))
+        while len(ch) > 1 and ch[-1][1] - ch[-1][0] + 1 < short and ch[-1][0] - ch[-2][1] - 1 >= 2:
             ch = ch[:-1]
-        while len(ch) > 1 and ch[0][1] - ch[0][0] + 1 < END_PIECE_MM and ch[1][0] - ch[0][1] - 1 >= 2:
+        while len(ch) > 1 and ch[0][1] - ch[0][0] + 1 < short and ch[1][0] - ch[0][1] - 1 >= 2:
             ch = ch[1:]
         if ch[-1][1] - ch[0][0] > best[1] - best[0]:
             best = (int(ch[0][0]), int(ch[-1][1]))
@@ -564,18 +569,20 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
             if run is None:
                 continue  # no corroded band here (a gap in the scribe)
             a_i, b_i = run
-            if a_i == 0 or b_i == len(closed) - 1:
-                continue  # the zone reaches the search limit: not measurable here
+            last = len(closed) - 1
             if foreign is not None and foreign[si, max(0, a_i - reach):b_i + reach + 1].any():
                 # runs into the other arm's zone: no edge of its own on that side, whose run goes on across
-                # the other zone (the other arm's corridor covers it); the side away from it still widens
-                # the corridor (the notch between two arms: a sliver of zone was rated as rust)
+                # the other zone (the other arm's corridor covers it), often to the search limit; the side
+                # away from it still widens the corridor unless it too reaches the limit (the notch between
+                # two arms: a sliver of zone was rated as rust).  Tested before the limit (review).
                 n_cross += int(counts[si])
-                if not foreign[si, max(0, a_i - reach):mid].any():
+                if a_i > 0 and not foreign[si, max(0, a_i - reach):mid].any():
                     reach_neg = max(reach_neg, -float(offs[a_i]))
-                if not foreign[si, mid:b_i + reach + 1].any():
+                if b_i < last and not foreign[si, mid:b_i + reach + 1].any():
                     reach_pos = max(reach_pos, float(offs[b_i]))
                 continue
+            if a_i == 0 or b_i == last:
+                continue  # the zone reaches the search limit: not measurable here
             if veil[max(0, a_i - reach):b_i + reach + 1].any():
                 # the zone runs into a mask, a label or the panel margin: its edge is hidden, so no creep
                 # is measured here; the zone seen so far still widens the corridor left out of the rating
