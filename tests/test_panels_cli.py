@@ -63,6 +63,10 @@ def test_end_to_end_outputs(runner, tray_file, tmp_path):
     js = json.loads((tmp_path / "out" / "panels" / "rack2_0240h_BW-1-B.json").read_text())
     assert js["coupon_version"] and "settings" in js and "profile_sha256" in js
     assert len(js["creep_stations"]) > 50
+    # the corridor reaches past the widest zone seen at any station, on each side (plus its 1 mm margin)
+    (reach_neg, reach_pos), = js["scribe_corridor_mm"]
+    assert reach_neg >= max(-x["left_edge_mm"] for x in js["creep_stations"]) + 1.0 - 1e-3  # rounded to 0.001
+    assert reach_pos >= max(x["right_edge_mm"] for x in js["creep_stations"]) + 1.0 - 1e-3
     assert (tmp_path / "out" / "overlays" / "rack2_0240h_BW-1-B.png").exists()
     # resume: a second run skips the image; --force redoes it
     res2 = invoke(runner, ["panels", path, "--out", tmp_path / "out", "--layout", layout])

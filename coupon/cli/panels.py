@@ -464,6 +464,9 @@ def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings:
         "coating_srgb": res["coating_srgb"], "coating_darker_than_rust": res["coating_darker_than_rust"],
         "rust_pixel_count_pct": res["rust_pixel_count_pct"], "glare_corrected_mm2": res["glare_corrected_mm2"],
         "scribe_lines_mm": scribe.lines, "creep_stations": scribe.stations, "scribe_note": scribe.note,
+        # how far the corridor left out of the rating reaches on either side of each line (mm; against and
+        # along the normal (-u_y, u_x) of the line's direction u)
+        "scribe_corridor_mm": [[round(float(a), 3), round(float(b), 3)] for a, b in scribe.corridor_sides_mm],
         "id_note": row.get("id_note", ""),
         "rust_site_area_mm2": res["_rust"].site_area_mm2.tolist(),
         "settings": settings.to_dict(), "image_sha256": sha256,
