@@ -279,13 +279,12 @@ def _find_lines(defect: np.ndarray, px_per_mm: float, settings: ScribeSettings, 
             break
         if found and best[0] < SECOND_LINE_SHARE * found[0][1]:
             break  # the arms of an X are about equally long; a weaker band is scattered rust
-        # fine angle: the projection of the band's own cells (within 3 mm of the coarse peak) is sharpest
-        # when aligned with it; rust elsewhere on the panel (and, before SCRIBE_MARGIN_MM, the border)
-        # would pull the angle its way
-        # the band: the bins around the peak above half its height, and 3 mm beyond.  A corroded zone
-        # 20 mm wide along a 100 mm scribe projects nearly as long at 10 degrees off (its diagonal), and
-        # the first angle on a tie was taken: the line ran across the zone and a chord of it was read as
-        # a second arm (tenth session).  Across the whole band the projection is sharpest along the zone.
+        # fine angle: the projection of the band's own cells (the bins around the peak above half its
+        # height, and 3 mm beyond) is sharpest when aligned with it; rust elsewhere on the panel (and,
+        # before SCRIBE_MARGIN_MM, the border) would pull the angle its way.  A corroded zone 20 mm wide
+        # along a 100 mm scribe projects nearly as long at 10 degrees off (its diagonal), and the first
+        # angle on a tie was taken: the line ran across the zone and a chord of it was read as a second
+        # arm (tenth session)
         h0, lo0 = _projection(xy, wts, best[1], 0.5)
         a0, b0 = _half_run(h0)
         rho = xy[:, 0] * np.cos(best[1]) + xy[:, 1] * np.sin(best[1])
@@ -507,7 +506,7 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
     step = 0.1
     offs = np.arange(-settings.search_mm, settings.search_mm + 1e-9, step)
     along = np.linspace(-0.4, 0.4, 5)
-    stations, halves, sides = [], [], []
+    stations, sides = [], []  # sides: the corridor's reach (against, along the normal) of each line
     n_hidden = n_cross = 0
     broad: list[int] = []
     for li, (p0, p1) in enumerate(lines):
@@ -524,11 +523,11 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
         counts = (ts >= settings.end_mm - 1e-9) & (ts <= length - settings.end_mm + 1e-9)
         reach_neg = reach_pos = 0.0  # the zone's reach against and along the normal
         centres = [p0 + t * u for t in ts]
-        use = [crossing is None or np.linalg.norm(ctr - crossing) > settings.end_mm for ctr in centres]
-        ts, counts = ts[np.asarray(use, bool)], counts[np.asarray(use, bool)]
+        use = np.array([crossing is None or np.linalg.norm(ctr - crossing) > settings.end_mm for ctr in centres],
+                       bool)
+        ts, counts = ts[use], counts[use]
         centres = np.array([ctr for ctr, ok in zip(centres, use) if ok]).reshape(-1, 2)
         if not len(ts):
-            halves.append(w / 2 + 1.0)
             sides.append((w / 2 + 1.0, w / 2 + 1.0))
             continue
         # every station's strip sampled in one remap of the defect and one of the metal map (the same
@@ -617,12 +616,11 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
         if mine and length < SCRIBE_MIN_ELONGATION * float(np.mean(mine)):
             broad.append(li)  # a broad patch (glare, a stain) along a line, not a thin band
         sides.append((max(reach_neg, w / 2) + 1.0, max(reach_pos, w / 2) + 1.0))
-        halves.append(max(sides[-1]))
     if broad:
         keep = [i for i in range(len(lines)) if i not in broad]
         renum = {old: new for new, old in enumerate(keep)}
         stations = [dict(x, line=renum[x["line"]]) for x in stations if x["line"] in renum]
-        lines, halves, sides = [lines[i] for i in keep], [halves[i] for i in keep], [sides[i] for i in keep]
+        lines, sides = [lines[i] for i in keep], [sides[i] for i in keep]
         what = f"{len(broad)} broad patch(es) along a line, not a thin band"
         if want and len(lines) != want:
             return ScribeResult(note=f"expected {'one scribe line' if want == 1 else 'an X scribe'}, found "
@@ -636,5 +634,5 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
     if n_cross:
         note = (f"{note}; " if note else "") + (f"{n_cross} station(s) near the crossing left out: the corroded "
                                                 "zone runs into the other arm's")
-    return ScribeResult([(np.asarray(a).tolist(), np.asarray(b).tolist()) for a, b in lines], stations, halves,
-                        note=note, corridor_sides_mm=sides)
+    return ScribeResult([(np.asarray(a).tolist(), np.asarray(b).tolist()) for a, b in lines], stations,
+                        [max(sd) for sd in sides], note=note, corridor_sides_mm=sides)
