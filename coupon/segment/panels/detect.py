@@ -36,7 +36,7 @@ from coupon.calibrate.scale import (
 from coupon.errors import AnalysisError
 from coupon.io.images import float01
 from coupon.io.threads import thread_pool
-from coupon.segment.panels.rust import _sample_idx, lstsq_quadratic
+from coupon.segment.panels.rust import _sample_idx, lstsq_quadratic, quadratic_design
 
 _LUT_LEVELS = 4096
 _DECODE_LUT = cs.srgb_to_linear(np.linspace(0.0, 1.0, _LUT_LEVELS)).astype(np.float32)
@@ -120,9 +120,7 @@ def _order_quad(q: np.ndarray) -> np.ndarray:
 
 
 def _poly_design(rows: int, cols: int, rr: np.ndarray, cc: np.ndarray) -> np.ndarray:
-    y = rr / rows - 0.5
-    x = cc / cols - 0.5
-    return np.column_stack([np.ones_like(x), x, y, x * x, x * y, y * y])
+    return quadratic_design(cc / cols - 0.5, rr / rows - 0.5)
 
 
 def _tray_distance(lab: np.ndarray, iterations: int = 3) -> np.ndarray:

@@ -21,7 +21,7 @@ from __future__ import annotations
 import cv2
 import numpy as np
 
-from coupon.segment.panels.rust import _LUMA, ColourModel, lstsq_quadratic
+from coupon.segment.panels.rust import _LUMA, ColourModel, lstsq_quadratic, quadratic_design
 
 #: A 2 mm block of clean coating is glare when it is lighter than the fitted light field by this share ...
 GLARE_MIN_REL = 0.10
@@ -71,7 +71,7 @@ def glare_mask(model: ColourModel, valid: np.ndarray, px_per_mm: float, light_to
     # rust pixels in (a wide scribe zone pulls it down, and the coating beside it would look lit up)
     rr, cc = np.nonzero(seen)
     y, x = rr / size[1] - 0.5, cc / size[0] - 0.5
-    design = np.column_stack([np.ones_like(x), x, y, x * x, x * y, y * y])
+    design = quadratic_design(x, y)
     vals = rel[seen].astype(np.float64)
     keep = np.ones(vals.size, bool)
     for _ in range(3):

@@ -375,6 +375,11 @@ def coating_colour(lin: np.ndarray, valid: np.ndarray, idx: np.ndarray | None = 
     return np.maximum(c, 1e-5)
 
 
+def quadratic_design(x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Design matrix (1, x, y, x2, xy, y2) of the panels' smooth quadratic fits (coordinates on [-0.5, 0.5])."""
+    return np.column_stack([np.ones_like(x), x, y, x * x, x * y, y * y])
+
+
 def lstsq_quadratic(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """Least squares of a small quadratic design (float64 normal equations).
 
@@ -455,7 +460,7 @@ def _smooth_light(alpha: np.ndarray | None, clean: np.ndarray, px_per_mm: float,
         level = float(np.median(stack[..., 0][clean])) if clean.any() else 1.0
         return np.full(clean.shape, level, np.float32)
     y, x = rr / rs - 0.5, cc / cs_ - 0.5
-    a = np.column_stack([np.ones_like(x), x, y, x * x, x * y, y * y])
+    a = quadratic_design(x, y)
     keep = _near_coating(vals)
     coef = None
     for _ in range(3):
