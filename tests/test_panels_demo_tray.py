@@ -83,9 +83,11 @@ def test_demo_tray_thin_scribes_found_and_measured(rated_demo_tray):
 
 
 # The known weakness below 4 px/mm, kept in view: the same 168 h tray in the landscape 2600 x 2000 frame of
-# earlier demos puts the panels at about 3.1 px/mm, where pinpoint rust on grey reads about half the truth
-# (R1C1: 0.0085 % against 0.036 %).  Within 0.1 percentage points, so the area passes the issue's tolerance;
-# the D610 grade reads 10 against 8, two classes good: a strict xfail, so that a fix shows.
+# earlier demos puts the panels at about 3.1 px/mm, where pinpoint rust on grey reads a quarter to a half of
+# the truth (R1C1: 0.0085 % against 0.036 % before the eleventh session, 0.0105 % since the rust colours
+# between the listed ones are fitted too).  Within 0.1 percentage points, so the area passes the issue's
+# tolerance.  The D610 grade read 10 against 8 and now 9 (0.0105 % lies just past the 0.01 % boundary of
+# grade 9): no fix, so the strict xfail checks the area's relative error instead, which shows a real one.
 @pytest.fixture(scope="module")
 def grey_pinpoint_at_3_px_per_mm():
     img, truth = tray_scene(_specs(HOURS), seed=SEED,
@@ -112,8 +114,8 @@ def test_grey_pinpoint_at_3_px_per_mm_area_within_tolerance(grey_pinpoint_at_3_p
 
 @pytest.mark.slow
 @pytest.mark.xfail(strict=True, raises=AssertionError,
-                   reason="grey pinpoint at 3.1 px/mm reads about half the truth: D610 grade 10 vs 8")
-def test_grey_pinpoint_at_3_px_per_mm_grade_within_one_class(grey_pinpoint_at_3_px_per_mm):
+                   reason="grey pinpoint at 3.1 px/mm reads a quarter to a half of the truth")
+def test_grey_pinpoint_at_3_px_per_mm_area_within_15_percent(grey_pinpoint_at_3_px_per_mm):
     _, res, tr = grey_pinpoint_at_3_px_per_mm
-    # ASTM D610-08 Table 1 grades (via coupon.ratings.scales): within one class
-    assert abs(int(res["rust_grade"]) - int(rust_grade(tr))) <= 1, (res["rust_grade"], rust_grade(tr))
+    # the relative part of issue 3's tolerance alone (the 0.1 percentage points cover this small area)
+    assert abs(res["rust_area_pct"] / tr - 1) <= 0.15, (res["rust_area_pct"], tr)

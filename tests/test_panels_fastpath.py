@@ -149,7 +149,8 @@ def _unmix_whole_panel(lin, valid, px_per_mm):
     statistics, one cone search per colour), as :func:`unmix` computed it before the strip-wise pass.
 
     Returns (score, fraction, neutral_dev, light, rust_wins, noise_fraction, best rust colour per pixel:
-    its index in RUST_ENDMEMBERS_SRGB at the rust pixels, -1 elsewhere).
+    its index in RUST_ENDMEMBERS_SRGB at the rust pixels, -1 elsewhere; the rust colour's deviation from
+    the coating at the per-pixel test's rust pixels, (R * C, 3), NaN elsewhere).
     """
     import cv2
 
@@ -179,16 +180,31 @@ def _unmix_whole_panel(lin, valid, px_per_mm):
         med = float(np.median(v))
         return med, float(1.4826 * np.median(np.abs(v - med)))
 
-    def best(q, qq, best_res):  # q (n, 3); one colour after the other, the first on a tie
+    def best(q, qq, best_res):  # q (n, 3): each colour, then each pair of neighbours; the first on a tie
         bf, bk = np.full(len(q), np.nan, np.float32), np.full(len(q), -1)
-        for k, e in enumerate(rust):
-            d = (e - c).astype(np.float32)
+        bd = np.full((len(q), 3), np.nan, np.float32)  # the rust colour's deviation used (a pair's mix)
+        devs = [(e - c).astype(np.float32) for e in rust]
+        for k, d in enumerate(devs):
             qd = q @ d
             f = np.clip(qd / float(d @ d), 0.0, 1.0)
             res = qq - 2 * f * qd + f * f * float(d @ d)
             better = (f > 0) & (res < best_res)
             best_res, bf, bk = np.where(better, res, best_res), np.where(better, f, bf), np.where(better, k, bk)
-        return bf, bk
+            bd[better] = d
+        for k in range(len(devs) - 1):
+            m = np.column_stack([devs[k], devs[k + 1]]).astype(np.float64)  # (3, 2)
+            ab = np.linalg.solve(m.T @ m, m.T @ q.T.astype(np.float64)).T  # (n, 2) unconstrained
+            full = ab.sum(axis=1) > 1  # beyond full cover: the nearest colour on the segment, at f = 1
+            dd = (devs[k + 1] - devs[k]).astype(np.float64)
+            t = np.clip((q.astype(np.float64) - devs[k]) @ dd / (dd @ dd), 0, 1)
+            ab[full] = np.column_stack([1 - t, t])[full]
+            res = ((q - ab @ m.T) ** 2).sum(axis=1)
+            better = (ab[:, 0] > 0) & (ab[:, 1] > 0) & (res < best_res)
+            f = ab.sum(axis=1)
+            best_res, bf = np.where(better, res, best_res), np.where(better, f, bf)
+            bk = np.where(better, np.where(ab[:, 0] >= ab[:, 1], k, k + 1), bk)
+            bd[better] = ((ab @ m.T) / f[:, None])[better]
+        return bf, bk, bd
 
     vidx = idx[:: max(1, idx.size // R._SAMPLE_PX)]
     med, sigma = robust(dev.ravel()[vidx])
@@ -197,10 +213,12 @@ def _unmix_whole_panel(lin, valid, px_per_mm):
     fraction, score, wins = neutral_dev.copy(), np.zeros_like(a_n), np.zeros(a_n.shape, bool)
     cand = np.flatnonzero(dev.ravel() > floor)
     q = flat[cand] / light.ravel()[cand, None] - c.astype(np.float32)
-    bf, bk0 = best(q, np.einsum("ij,ij->i", q, q), R.RUST_WINS_RATIO * perp2.ravel()[cand] / light.ravel()[cand] ** 2)
+    bf, bk0, bd0 = best(q, np.einsum("ij,ij->i", q, q), R.RUST_WINS_RATIO * perp2.ravel()[cand] / light.ravel()[cand] ** 2)
     won = np.isfinite(bf)
     kmap = np.full(a_n.shape, -1, np.int8)
     kmap.ravel()[cand[won]] = bk0[won]
+    dmap = np.full((a_n.size, 3), np.nan, np.float32)  # the rust colour's deviation at the per-pixel test's pixels
+    dmap[cand[won]] = bd0[won]
     wins.ravel()[cand[won]] = True
     fraction.ravel()[cand[won]] = bf[won]
     score.ravel()[cand[won]] = (dev.ravel()[cand[won]] - med) / max(sigma, 1e-4)
@@ -215,10 +233,10 @@ def _unmix_whole_panel(lin, valid, px_per_mm):
         b_med, b_sig = robust(dev_b.ravel()[vidx])
         cb = np.flatnonzero(((np.abs(dy - y_med) > 2 * y_sig) & (dev_b > b_med + 3 * b_sig) & ~wins).ravel())
         qv = pb.reshape(-1, 3)[cb] - c.astype(np.float32)
-        bf, bk = best(qv, np.einsum("ij,ij->i", qv, qv), R.RUST_WINS_RATIO * tb2.ravel()[cb])
+        bf, bk, bd = best(qv, np.einsum("ij,ij->i", qv, qv), R.RUST_WINS_RATIO * tb2.ravel()[cb])
         ok = np.isfinite(bf)
         ids, kk = cb[ok], bk[ok]
-        d_y = np.array([float((e - c) @ R._LUMA) for e in rust], np.float32)[kk]
+        d_y = (bd[ok] @ R._LUMA).astype(np.float32)  # the lightness of the rust colour used
         f_l = (dy.ravel()[ids] - y_med) / d_y
         good = (f_l > 0) & (np.abs(d_y) > 2 * y_sig)
         ids, f_l = ids[good], f_l[good]
@@ -231,7 +249,7 @@ def _unmix_whole_panel(lin, valid, px_per_mm):
     refs = fraction.ravel()[clean[:: max(1, clean.size // R._SAMPLE_PX)]]
     med_r = float(np.median(refs))  # the noise from the quieter side of the median (rust._robust_one_sided)
     noise = 1.4826 * min(float(np.median(med_r - refs[refs < med_r])), float(np.median(refs[refs > med_r] - med_r)))
-    return score, fraction, neutral_dev, light, wins, noise, kmap
+    return score, fraction, neutral_dev, light, wins, noise, kmap, dmap
 
 
 @pytest.fixture(scope="module")
@@ -259,7 +277,7 @@ def test_strip_unmix_matches_the_whole_panel_computation(tray_panels):
     from coupon.segment.panels.rust import RustSettings, measure_rust, unmix
 
     for panel, valid in tray_panels:
-        score, fraction, neutral_dev, light, wins, noise, kmap = _unmix_whole_panel(panel.linear, valid, 10.0)
+        score, fraction, neutral_dev, light, wins, noise, kmap, dmap = _unmix_whole_panel(panel.linear, valid, 10.0)
         m = unmix(panel.linear, valid, 10.0)
         assert m.score.dtype == m.fraction.dtype == m.light.dtype == np.float32
         # float32 rounding of the same operations in another order: a pixel on a threshold may flip
@@ -270,7 +288,11 @@ def test_strip_unmix_matches_the_whole_panel_computation(tray_panels):
         # instead (another fraction and score): with OpenCV 5.0, 1 pixel of 1.1 million on the white panel
         same = m.rust_wins == wins
         other_test = same & ~np.isclose(m.fraction, fraction, rtol=0, atol=1e-5)
-        assert other_test.sum() <= max(2, 1e-5 * wins.size)
+        # ... and a pixel whose best fit is a near tie between a colour and a pair of colours may take the
+        # other one (float32 here, float64 there): 5 to 22 of 38 000 to 125 000 rust pixels, fractions
+        # within 0.031
+        assert other_test.sum() <= max(2, 1e-5 * wins.size) + 5e-4 * wins.sum()
+        assert np.abs(m.fraction - fraction)[other_test & wins].max(initial=0) < 0.05
         same &= ~other_test
         np.testing.assert_allclose(m.fraction[same], fraction[same], atol=1e-5)
         np.testing.assert_allclose(m.score[same], score[same], rtol=1e-4, atol=1e-3)
@@ -278,10 +300,12 @@ def test_strip_unmix_matches_the_whole_panel_computation(tray_panels):
         cone = None
         if m.coating_darker_than_rust:
             # the cone's fraction at every rust pixel (no pooled test on such coatings), whole-panel arrays;
-            # _cone_fraction itself is checked against scipy in tests/test_panels_unmix.py
+            # with each pixel's own rust colour; _cone_fraction_along itself is checked against scipy in
+            # tests/test_panels_unmix.py
             wi = np.flatnonzero(wins)
             pn = np.ascontiguousarray((panel.linear.reshape(-1, 3)[wi] / light.ravel()[wi, None]).T)
-            cone = (wi, R._cone_fraction(pn, m.coating_linear, [R._lin(e) for e in R.RUST_ENDMEMBERS_SRGB]))
+            e_pix = np.ascontiguousarray((dmap[wi] + m.coating_linear.astype(np.float32)).T)
+            cone = (wi, R._cone_fraction_along(pn, m.coating_linear, e_pix))
         # the best rust colour of every rust pixel, as its lightness rank (0 the lightest rust colour)
         rust_y = np.array([R._lin(e) @ R._LUMA for e in R.RUST_ENDMEMBERS_SRGB])
         rank = np.argsort(np.argsort(-rust_y)).astype(np.int8)

@@ -491,27 +491,81 @@ def _smooth_light(alpha: np.ndarray | None, clean: np.ndarray, px_per_mm: float,
 
 
 def _best_rust(q: np.ndarray, qq: np.ndarray, best_res: np.ndarray, rust_dev: list[np.ndarray]):
-    """Best rust colour per pixel: fraction, index, residual^2.
+    """Best rust colour per pixel: fraction, index, residual^2, and the rust colour's deviation used.
 
     ``q`` is planar, (3, n): the deviations from the coating, one row per channel; ``qq`` their squared
-    norms.  A colour counts only with a positive fraction and a residual below ``best_res`` (the first
-    colour wins a tie); else the fraction is NaN and the index -1.  Planar rows keep every operation on
-    contiguous 1-D arrays: numpy on an (n, 3) or (n, 5) array (a reduction or broadcast over the short
-    inner axis) runs 4 to 10 times slower per element, and a BLAS product costs its threads' start-up
-    (up to 8 ms a call on this 2-core machine when the other core is busy).
+    norms.  ``rust_dev`` are the rust colours minus the coating, in the order of
+    :data:`RUST_ENDMEMBERS_SRGB` (a curve from the lightest rust colour to the darkest): a pixel is fitted
+    on every single colour (``f d_k``) and on every pair of neighbours (``a d_k + b d_k+1``, a, b > 0:
+    a rust colour between the two, at cover ``f = a + b``; beyond full cover, the colour on the segment
+    between them at f = 1).  A fit counts only with a positive fraction and a residual below ``best_res``
+    (the first fit wins a tie); else the fraction is NaN and the index -1.  The index is the nearer
+    endmember of a pair; the deviation (planar (3, n), NaN where nothing wins) is ``(a d_k + b d_k+1) / f``.
+
+    Planar rows keep every operation on contiguous 1-D arrays: numpy on an (n, 3) or (n, 5) array (a
+    reduction or broadcast over the short inner axis) runs 4 to 10 times slower per element, and a BLAS
+    product costs its threads' start-up (up to 8 ms a call on this 2-core machine when the other core
+    is busy).
     """
-    best_f = np.full(q.shape[1], np.nan, np.float32)
-    best_k = np.full(q.shape[1], -1, np.int8)
+    n = q.shape[1]
+    best_f = np.full(n, np.nan, np.float32)
+    best_k = np.full(n, -1, np.int8)
+    best_s = np.zeros(n, np.float32)  # share of the second colour of a pair (0: a single colour)
+    best_lo = np.full(n, -1, np.int8)
+    dots = [q[0] * d[0] + q[1] * d[1] + q[2] * d[2] for d in rust_dev]
     for k, d in enumerate(rust_dev):
         dd = float(d @ d)
-        qd = q[0] * d[0] + q[1] * d[1] + q[2] * d[2]
+        qd = dots[k]
         f = np.clip(qd / dd, 0.0, 1.0)
         res = qq - 2 * f * qd + f * f * dd
         better = (f > 0) & (res < best_res)
         best_res = np.where(better, res, best_res)
         best_f = np.where(better, f, best_f)
         best_k = np.where(better, np.int8(k), best_k)
-    return best_f, best_k, best_res
+        best_lo = np.where(better, np.int8(k), best_lo)
+        best_s = np.where(better, np.float32(0), best_s)
+    # the pairs in float64 and in the basis (d_k, d_k+1 - d_k), whose first coefficient is the cover f
+    # itself: neighbouring colours can point nearly the same way from a light coating, and the float32
+    # 2 x 2 solve in (d_k, d_k+1) lost up to 0.03 of a fraction to rounding
+    q64 = q.astype(np.float64)
+    for k in range(len(rust_dev) - 1):
+        d1 = np.asarray(rust_dev[k], np.float64)
+        dd = np.asarray(rust_dev[k + 1], np.float64) - d1
+        g11, g12, g22 = float(d1 @ d1), float(d1 @ dd), float(dd @ dd)
+        det = g11 * g22 - g12 * g12
+        if det <= 1e-12 * g11 * g22:
+            continue
+        r1 = q64[0] * d1[0] + q64[1] * d1[1] + q64[2] * d1[2]
+        r2 = q64[0] * dd[0] + q64[1] * dd[1] + q64[2] * dd[2]
+        f = (g22 * r1 - g12 * r2) / det
+        b = (g11 * r2 - g12 * r1) / det  # the share of the second colour, times f
+        # beyond full cover: the nearest colour on the segment between the two, at f = 1
+        full = f > 1
+        if full.any():
+            t = np.clip((r2 - g12) / g22, 0.0, 1.0)  # (q - d1) . dd / |dd|^2
+            b = np.where(full, t, b)
+            f = np.where(full, 1.0, f)
+        a = f - b
+        res = np.zeros(n, np.float64)
+        for ch in range(3):
+            e = q64[ch] - f * d1[ch] - b * dd[ch]
+            res += e * e
+        better = (a > 0) & (b > 0) & (res < best_res)
+        best_res = np.where(better, res, best_res).astype(np.float32)
+        best_f = np.where(better, f, best_f).astype(np.float32)
+        best_k = np.where(better, np.where(a >= b, np.int8(k), np.int8(k + 1)), best_k)
+        best_lo = np.where(better, np.int8(k), best_lo)
+        best_s = np.where(better, b / np.maximum(f, 1e-12), best_s).astype(np.float32)
+    dev = _mixed_dev(best_lo, best_s, rust_dev)
+    return best_f.astype(np.float32), best_k, best_res, dev
+
+
+def _mixed_dev(lo: np.ndarray, s: np.ndarray, rust_dev: list[np.ndarray]) -> np.ndarray:
+    """Planar (3, n) rust deviations ``(1 - s) d_lo + s d_lo+1`` (NaN where ``lo`` is -1)."""
+    table = np.vstack([np.asarray(rust_dev, np.float32), np.full((1, 3), np.nan, np.float32)])  # row -1: none
+    nxt = np.vstack([table[1:-1], table[-2:-1], table[-1:]])  # the next colour (the last repeats itself)
+    a, b = table[lo], nxt[lo]
+    return np.ascontiguousarray((a + s[:, None] * (b - a)).T)
 
 
 def _cone_fraction(pn: np.ndarray, c: np.ndarray, rust: list[np.ndarray]) -> np.ndarray:
@@ -548,6 +602,32 @@ def _cone_fraction(pn: np.ndarray, c: np.ndarray, rust: list[np.ndarray]) -> np.
         best_res = np.where(better, res, best_res)
         best_a = np.where(better, a, best_a)
     return np.clip(1 - best_a, 0.0, 1.0)
+
+
+def _cone_fraction_along(pn: np.ndarray, c: np.ndarray, e: np.ndarray) -> np.ndarray:
+    """:func:`_cone_fraction` with each pixel's own rust colour: planar (3, n) ``e`` (the colour on the
+    rust colour curve that :func:`_best_rust` chose for the pixel) instead of a search over the endmembers.
+
+    Each pixel is fitted as ``alpha c + beta e`` with alpha, beta >= 0 (the unconstrained 2 x 2 solution,
+    or, where its alpha is negative, the fit on ``e`` alone); where beta is not positive, alpha 1
+    (fraction 0), as in :func:`_cone_fraction`.
+    ``tests/test_panels_unmix.py`` checks it against scipy.optimize.nnls.
+    """
+    c32 = c.astype(np.float32)
+    cc = np.float32(c @ c)
+    pc = pn[0] * c32[0] + pn[1] * c32[1] + pn[2] * c32[2]
+    pe = pn[0] * e[0] + pn[1] * e[1] + pn[2] * e[2]
+    ce = e[0] * c32[0] + e[1] * c32[1] + e[2] * c32[2]
+    ee = e[0] * e[0] + e[1] * e[1] + e[2] * e[2]
+    det = cc * ee - ce * ce
+    safe = np.where(det > 0, det, np.float32(1))
+    a = (ee * pc - ce * pe) / safe
+    b = (cc * pe - ce * pc) / safe
+    # alpha < 0: the pixel lies beyond the rust colour (fit on e alone, alpha 0); beta <= 0: no rust in it
+    b = np.where(a < 0, pe, b)  # the fit on e alone: beta = pe / ee, of pe's sign
+    a = np.where(a < 0, np.float32(0), a)
+    a = np.where((b <= 0) | (det <= 0), np.float32(1), a)
+    return np.clip(1 - a, 0.0, 1.0)
 
 
 def _planar(px: np.ndarray) -> np.ndarray:
@@ -746,7 +826,7 @@ def unmix(lin: np.ndarray, valid: np.ndarray, px_per_mm: float,
         # a rust colour must explain the pixel clearly better than the neutral cone (dirt, glare)
         cand, lc = np.concatenate(c_idx), np.concatenate(c_l)
         q = _planar(np.concatenate(c_px)) / lc - c32[:, None]
-        best_f, best_k, _ = _best_rust(q, _norm2(q), RUST_WINS_RATIO * np.concatenate(c_p2) / lc ** 2, rust_dev)
+        best_f, best_k, _, best_d = _best_rust(q, _norm2(q), RUST_WINS_RATIO * np.concatenate(c_p2) / lc ** 2, rust_dev)
         won = np.isfinite(best_f)
         idx = cand[won]
         k_parts.append(best_k[won])
@@ -754,7 +834,7 @@ def unmix(lin: np.ndarray, valid: np.ndarray, px_per_mm: float,
         won_parts.append(idx)
         fraction.ravel()[idx] = best_f[won]
         if darker:
-            cone = (idx, _cone_fraction(q[:, won] + c32[:, None], c, rust))
+            cone = (idx, _cone_fraction_along(q[:, won] + c32[:, None], c, best_d[:, won] + c32[:, None]))
         # score: distance from the neutral cone in noise units (how sure this is rust)
         score.ravel()[idx] = (np.concatenate(c_dev)[won] - med) / s_inv
     if pooled and b_idx:
@@ -769,10 +849,11 @@ def unmix(lin: np.ndarray, valid: np.ndarray, px_per_mm: float,
         cand_b, pbv, tb2, dyv, dev_b = cand_b[lean], pbv[lean], tb2[lean], dyv[lean], dev_b[lean]
         if cand_b.size and b_sig > 0:
             qv = _planar(pbv) - c32[:, None]  # deviation from the coating, only where it is needed
-            bf, bk, _ = _best_rust(qv, _norm2(qv), RUST_WINS_RATIO * tb2, rust_dev)
+            bf, bk, _, bd = _best_rust(qv, _norm2(qv), RUST_WINS_RATIO * tb2, rust_dev)
             ok = np.isfinite(bf)
             ids, kk, dy_ok, dev_ok = cand_b[ok], bk[ok].astype(int), dyv[ok], dev_b[ok]
-            d_y = np.array([float(d @ _LUMA) for d in rust_dev], np.float32)[kk]
+            bd = bd[:, ok]
+            d_y = bd[0] * np.float32(_LUMA[0]) + bd[1] * np.float32(_LUMA[1]) + bd[2] * np.float32(_LUMA[2])
             f_l = (dy_ok - y_med) / d_y  # lightness unmixed against the chosen rust colour
             good = (f_l > 0) & (np.abs(d_y) > 2 * y_sig)
             ids, f_l, d_y, dy_ok, dev_ok = ids[good], f_l[good], d_y[good], dy_ok[good], dev_ok[good]
