@@ -636,3 +636,34 @@ def test_heavy_creep(coating, scribe, creep, kinds, seed):
     # grade within one class (issue 3; ASTM D610-08 Table 1 via coupon.ratings.scales): the zone past the
     # corridor of an X with 10 mm creep read 0.063 % on a panel with no rust, grade 8 for 10 (review)
     assert abs(int(res["rust_grade"]) - int(rust_grade(tr["rust_area_pct"]))) <= 1
+
+
+# The corridor left out of the rating follows the zone station by station.  Synthetic ground truth: the
+# painted creep varies along the line (each side smoothly, 30 % about its mean); truth_rust leaves out, at
+# each 1 mm station, the half width + that station's creep (at least its median, the larger of it and its
+# neighbours') + 1 mm.  With one band a side as wide as that side's widest zone (the rule before, the same
+# code with each side's profile held at its largest reach) the rated area of these panels came out 4.0 to
+# 5.6 % short of the truth (0.2 to 0.4 % now), and rust beside the narrow stretches was not rated.
+# Tolerance: issue 3 (areas within 1 % of the nominal after rectification; rust within max(0.1 pp, 15 %)).
+@pytest.mark.slow
+@pytest.mark.parametrize("coating, scribe, seed", [("white", "line", 3), ("grey", "x", 7), ("dark", "line", 9)])
+def test_the_scribe_corridor_follows_the_zone_along_the_line(coating, scribe, seed):
+    img, truth = tray_scene([PanelSpec(coating, ("spots",), scribe=scribe, creep_mm=3.0)], seed=seed,
+                            settings=TraySettings(cols=1))
+    q = _only_panel(img)
+    settings = PanelSettings()
+    res = rate_panel(rectify_panel(img, q.corners_xy, settings.size_mm, settings.px_per_mm), settings)
+    p = truth["panels"][0]
+    tr = truth_rust(p, 5.0)
+    assert res["scribe_kind"] == scribe, res["scribe_note"]
+    assert abs(res["rated_area_mm2"] - tr["rated_area_mm2"]) <= 0.01 * tr["rated_area_mm2"], (
+        res["rated_area_mm2"], tr["rated_area_mm2"])
+    assert _rust_ok(res["rust_area_pct"], tr["rust_area_pct"]), (res["rust_area_pct"], tr["rust_area_pct"])
+    # the corridor narrows where the painted zone does (to the side's median): its reach spans at least half
+    # the painted spread above the median
+    spread = min(np.ptp(np.maximum(sc[side], np.median(sc[side])))
+                 for sc in p["scribes"] for side in ("creep_left_mm", "creep_right_mm"))
+    for pr in res["_scribe"].corridor_profiles:
+        for side in ("neg_mm", "pos_mm"):
+            reach = np.asarray(pr[side])[1:-1]
+            assert np.ptp(reach) >= 0.5 * spread, (side, np.ptp(reach), spread)

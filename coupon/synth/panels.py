@@ -325,7 +325,10 @@ def truth_rust(panel_truth: dict, edge_mm: float, scribe_margin_mm: float = 1.0)
     """Rusted area and rated area of a synthetic panel, as ``coupon panels`` defines them.
 
     The rated area is the panel minus the edge band, the QR label box (plus 2 mm)
-    and the scribe corridors (scribe half width + largest creep of that side + margin, on each side).
+    and the scribe corridors: on each side, at each 1 mm station, the scribe half width + the painted creep
+    of that side (at least its median over the line), the larger of it and its two neighbours' (a station
+    stands for 1 mm of line), + margin;
+    linear between stations, held to 2 mm past the scribe's ends (square ends).
     """
     cover = panel_truth["_rust_cover"]
     s = panel_truth["plane_px_per_mm"]
@@ -341,10 +344,15 @@ def truth_rust(panel_truth: dict, edge_mm: float, scribe_margin_mm: float = 1.0)
         u = (p1 - p0) / sc["length_mm"]
         t = (xx - p0[0]) * u[0] + (yy - p0[1]) * u[1]
         d = -(xx - p0[0]) * u[1] + (yy - p0[1]) * u[0]
-        # each side as far as its own largest creep (d >= 0 is the left of the line's direction)
-        half_l = sc["width_mm"] / 2 + sc["creep_left_mm"].max() + scribe_margin_mm
-        half_r = sc["width_mm"] / 2 + sc["creep_right_mm"].max() + scribe_margin_mm
-        rated &= ~((d <= half_l) & (-d <= half_r) & (t >= -2) & (t <= sc["length_mm"] + 2))
+        # each side as far as its own creep at each station (d >= 0 is the left of the line's direction)
+        st = sc["station_t_mm"]
+        reach = []
+        for creep in (sc["creep_left_mm"], sc["creep_right_mm"]):
+            creep = np.maximum(creep, np.median(creep))
+            pad = np.concatenate([creep[:1], creep, creep[-1:]])
+            wide = np.maximum(np.maximum(pad[:-2], pad[1:-1]), pad[2:])
+            reach.append(np.interp(t, st, sc["width_mm"] / 2 + wide + scribe_margin_mm).astype(np.float32))
+        rated &= ~((d <= reach[0]) & (-d <= reach[1]) & (t >= -2) & (t <= sc["length_mm"] + 2))
     rated_mm2 = float(rated.sum()) / s**2
     rust_mm2 = float(cover[rated].sum()) / s**2
     return {"rated_area_mm2": rated_mm2, "rust_area_mm2": rust_mm2,

@@ -84,10 +84,11 @@ class ScribeResult:
 
     ``lines``: list of (start_xy_mm, end_xy_mm); ``stations``: one dict per
     station (line, t_mm, centre_xy_mm, normal_xy, left_mm, right_mm, creep_mm);
-    ``corridor_half_mm``: half width of the band left out of the rust rating (its wider side);
-    ``corridor_sides_mm``: its reach on either side, (against the normal, along it) with the normal
-    ``(-u_y, u_x)`` of the line's direction ``u``: a zone that crept further on one side than on the other
-    (or a line found off the cut's centre, the middle of a wide zone) takes no more coating on the other.
+    ``corridor_profiles``: per line, the band left out of the rust rating (dict of ``t_mm`` along the
+    line from its start and the reach ``neg_mm`` against and ``pos_mm`` along the normal ``(-u_y, u_x)`` of
+    the line's direction ``u``, from :func:`_corridor_profile`): a zone that crept further at some stations,
+    or on one side, takes no more coating elsewhere; ``corridor_sides_mm``: its largest reach on either
+    side (against the normal, along it); ``corridor_half_mm``: the wider of the two.
     """
 
     lines: list = field(default_factory=list)
@@ -95,6 +96,7 @@ class ScribeResult:
     corridor_half_mm: list = field(default_factory=list)
     note: str = ""
     corridor_sides_mm: list = field(default_factory=list)
+    corridor_profiles: list = field(default_factory=list)
 
     @property
     def found(self) -> bool:
@@ -128,19 +130,26 @@ class ScribeResult:
         return float(self._vals("left_mm").mean()), float(self._vals("right_mm").mean())
 
     def corridor_mask(self, shape_rc, px_per_mm: float) -> np.ndarray:
-        """Pixels of the scribe zones (left out of the rust rating)."""
+        """Pixels of the scribe zones (left out of the rust rating): along each line, as far on either side
+        as its corridor profile reaches at each station (``corridor_profiles``, from :func:`_corridor_profile`),
+        with square ends 2 mm past the scribe's ends (round caps of the zone's half width would take in rust
+        beyond the ends of a wide corrosion zone); without profiles, one band of ``corridor_sides_mm``."""
         mask = np.zeros(shape_rc, np.uint8)
-        sides = self.corridor_sides_mm or [(h, h) for h in self.corridor_half_mm]
-        for (p0, p1), (h_neg, h_pos) in zip(self.lines, sides):
+        profiles = self.corridor_profiles or [
+            {"t_mm": None, "neg_mm": [h_neg] * 2, "pos_mm": [h_pos] * 2}
+            for h_neg, h_pos in (self.corridor_sides_mm or [(h, h) for h in self.corridor_half_mm])]
+        for (p0, p1), pr in zip(self.lines, profiles):
             p0, p1 = np.asarray(p0), np.asarray(p1)
-            u = (p1 - p0) / np.linalg.norm(p1 - p0)
-            a, b = p0 - 2 * u, p1 + 2 * u
+            length = float(np.linalg.norm(p1 - p0))
+            u = (p1 - p0) / length
             n = np.array([-u[1], u[0]])
-            pos, neg = n * max(h_pos, 0.5 / px_per_mm), n * max(h_neg, 0.5 / px_per_mm)
-            # square ends 2 mm past the scribe ends (round caps of the zone's half width would take
-            # in rust beyond the ends of a wide corrosion zone)
-            quad = (np.array([a + pos, b + pos, b - neg, a - neg]) * px_per_mm - 0.5) * 16
-            cv2.fillPoly(mask, [np.rint(quad).astype(np.int32).reshape(-1, 1, 2)], 1, lineType=cv2.LINE_8, shift=4)
+            t = np.asarray(pr["t_mm"] if pr["t_mm"] is not None else [-2.0, length + 2.0], float)
+            lo = np.maximum(np.asarray(pr["neg_mm"], float), 0.5 / px_per_mm)
+            hi = np.maximum(np.asarray(pr["pos_mm"], float), 0.5 / px_per_mm)
+            centre = p0[None, :] + t[:, None] * u[None, :]
+            poly = np.vstack([centre + hi[:, None] * n, (centre - lo[:, None] * n)[::-1]])
+            pts = np.rint((poly * px_per_mm - 0.5) * 16).astype(np.int32).reshape(-1, 1, 2)
+            cv2.fillPoly(mask, [pts], 1, lineType=cv2.LINE_8, shift=4)
         return mask.astype(bool)
 
 
@@ -460,6 +469,52 @@ def _station_maps(centres: np.ndarray, along: np.ndarray, offs: np.ndarray, u: n
     return maps[0], maps[1]
 
 
+#: Margin of the corridor beyond the corroded zone at each station (mm, coupon's choice).
+CORRIDOR_MARGIN_MM = 1.0
+
+
+def _corridor_profile(t_mm: np.ndarray, reach: np.ndarray, length_mm: float, width_mm: float,
+                      shared: np.ndarray | None = None) -> dict:
+    """The corridor's reach along one line, at each station (``t_mm``, 1 mm apart) and on either side.
+
+    ``reach`` (n, 2) is the zone's reach against and along the normal.  Each value is at least the cut's
+    half width and that side's median reach over the line (a zone washed out by glare read 0 mm creep over
+    5 stations of a 3 mm zone, whose coating side was then rated as rust), then the larger of it and its
+    neighbours' (a station stands for 1 mm of line, and the zone's edge moves between two), plus
+    :data:`CORRIDOR_MARGIN_MM`.  A station whose zone runs to the search limit (inf) takes the line's
+    widest seen reach on that side.  A station not seen (NaN: near the crossing of an X, where the two
+    zones merge, or where no corroded band shows) takes the reach interpolated along the line between the
+    nearest stations that saw the zone's own edge on that side: ``shared`` marks a reach cut at the bisector
+    with the other arm (with heavy creep every station near the crossing has one, and interpolating those
+    left the merged zone's outer part rated as rust).  The first and last stations' values hold to 2 mm
+    past the line's ends (square ends).
+    """
+    r = np.array(reach, float).reshape(-1, 2)
+    t = np.asarray(t_mm, float)
+    shared = np.zeros(r.shape, bool) if shared is None else np.asarray(shared, bool).reshape(-1, 2)
+    half = width_mm / 2
+    for j in range(2):
+        seen = np.isfinite(r[:, j])
+        widest = r[seen, j].max() if seen.any() else half
+        r[np.isposinf(r[:, j]), j] = widest
+        gap = np.isnan(r[:, j])
+        src = seen & ~shared[:, j]
+        src = src if src.any() else seen
+        r[gap, j] = np.interp(t[gap], t[src], r[src, j]) if src.any() else widest
+    r = np.maximum(r, half)
+    if len(r):
+        r = np.maximum(r, np.median(r, axis=0))  # no narrower than the side's median reach
+    if len(r) >= 2:
+        pad = np.vstack([r[:1], r, r[-1:]])
+        r = np.maximum(np.maximum(pad[:-2], pad[1:-1]), pad[2:])
+    r = r + CORRIDOR_MARGIN_MM
+    if not t.size:
+        t, r = np.array([0.0, length_mm]), np.full((2, 2), half + CORRIDOR_MARGIN_MM)
+    t = np.concatenate([[-2.0], t, [length_mm + 2.0]])
+    r = np.vstack([r[:1], r, r[-1:]])
+    return {"t_mm": t.tolist(), "neg_mm": r[:, 0].tolist(), "pos_mm": r[:, 1].tolist()}
+
+
 def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, float],
                    settings: ScribeSettings = ScribeSettings(), exclude: np.ndarray | None = None,
                    unsure: np.ndarray | None = None) -> ScribeResult:
@@ -506,7 +561,7 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
     step = 0.1
     offs = np.arange(-settings.search_mm, settings.search_mm + 1e-9, step)
     along = np.linspace(-0.4, 0.4, 5)
-    stations, sides = [], []  # sides: the corridor's reach (against, along the normal) of each line
+    stations, profiles = [], []  # profiles: the corridor's reach (against, along the normal) along each line
     n_hidden = n_cross = 0
     broad: list[int] = []
     for li, (p0, p1) in enumerate(lines):
@@ -521,15 +576,20 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
         tip = np.arange(1.0, min(settings.end_mm, length / 2) - 1e-9, 1.0)
         ts = np.concatenate([tip, ts, length - tip[::-1]])
         counts = (ts >= settings.end_mm - 1e-9) & (ts <= length - settings.end_mm + 1e-9)
-        reach_neg = reach_pos = 0.0  # the zone's reach against and along the normal
         centres = [p0 + t * u for t in ts]
         use = np.array([crossing is None or np.linalg.norm(ctr - crossing) > settings.end_mm for ctr in centres],
                        bool)
+        # the zone's reach against and along the normal at every station (NaN: not seen, near the crossing
+        # of an X or where no band shows; inf: the zone runs to the search limit; see _corridor_profile)
+        reach = np.full((len(ts), 2), np.nan)
+        shared = np.zeros((len(ts), 2), bool)  # the reach is cut at the bisector with the other arm
+        t_all = ts
         ts, counts = ts[use], counts[use]
         centres = np.array([ctr for ctr, ok in zip(centres, use) if ok]).reshape(-1, 2)
         if not len(ts):
-            sides.append((w / 2 + 1.0, w / 2 + 1.0))
+            profiles.append(_corridor_profile(t_all, reach, length, w))
             continue
+        reach_used, shared_used = reach[use], shared[use]
         # every station's strip sampled in one remap of the defect and one of the metal map (the same
         # bilinear samples as one remap per station, 0.1 ms of call overhead each saved), and the gap
         # closing of all profiles in one call
@@ -542,7 +602,7 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
         # samples on or beside hidden pixels (any of the 5 lines along the station; off the grid counts)
         veiled = cv2.remap(hidden, map_x, map_y, cv2.INTER_LINEAR, borderMode=cv2.BORDER_CONSTANT,
                            borderValue=1).reshape(n_st, len(along), len(offs)).max(axis=1) > 0
-        reach = int(round(HIDDEN_REACH_MM / step))
+        near = int(round(HIDDEN_REACH_MM / step))
         # X scribe: samples nearer the other line than this one belong to the other arm's zone; near the
         # crossing the two zones merge, and a zone reaching there has no edge of its own
         foreign = None
@@ -566,33 +626,50 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
         for si, (t, centre, prof, core, above, closed, run, veil) in enumerate(zip(ts, centres, profs, cores, aboves,
                                                                                  closeds, runs, veiled)):
             if run is None:
-                continue  # no corroded band here (a gap in the scribe)
+                # no corroded band seen here: a gap in the scribe, or a zone too faint to see (under corrected
+                # glare); the corridor takes its neighbours' reach (NaN), not the cut's alone: narrowed to the
+                # cut, a faint zone under glare was rated as rust (0.67 % for 0.39 %)
+                continue
             a_i, b_i = run
             last = len(closed) - 1
-            if foreign is not None and foreign[si, max(0, a_i - reach):b_i + reach + 1].any():
+            if foreign is not None and foreign[si, max(0, a_i - near):b_i + near + 1].any():
                 # runs into the other arm's zone: no edge of its own on that side, whose run goes on across
                 # the other zone (the other arm's corridor covers it), often to the search limit; the side
                 # away from it still widens the corridor unless it too reaches the limit (the notch between
                 # two arms: a sliver of zone was rated as rust).  Tested before the limit (review).
+                # on the other arm's side this arm's corridor reaches as far as the samples nearer this line
+                # (the other arm's corridor takes over there), on the free side as far as the zone
                 n_cross += int(counts[si])
-                if a_i > 0 and not foreign[si, max(0, a_i - reach):mid].any():
-                    reach_neg = max(reach_neg, -float(offs[a_i]))
-                if b_i < last and not foreign[si, mid:b_i + reach + 1].any():
-                    reach_pos = max(reach_pos, float(offs[b_i]))
+                f_neg = np.flatnonzero(foreign[si, :mid + 1])
+                f_pos = np.flatnonzero(foreign[si, mid:]) + mid
+                if f_neg.size and f_neg[-1] >= a_i - near:
+                    reach_used[si, 0] = -float(offs[max(a_i, f_neg[-1] + 1)])
+                    shared_used[si, 0] = True
+                elif a_i > 0:
+                    reach_used[si, 0] = -float(offs[a_i])
+                if f_pos.size and f_pos[0] <= b_i + near:
+                    reach_used[si, 1] = float(offs[min(b_i, f_pos[0] - 1)])
+                    shared_used[si, 1] = True
+                elif b_i < last:
+                    reach_used[si, 1] = float(offs[b_i])
                 continue
             if a_i == 0 or b_i == last:
-                continue  # the zone reaches the search limit: not measurable here
-            if veil[max(0, a_i - reach):b_i + reach + 1].any():
+                # the zone reaches the search limit: not measurable here; on that side the corridor takes the
+                # line's widest reach (inf), on the other it reaches the zone's end
+                reach_used[si] = (np.inf if a_i == 0 else -float(offs[a_i]),
+                                  np.inf if b_i == last else float(offs[b_i]))
+                continue
+            if veil[max(0, a_i - near):b_i + near + 1].any():
                 # the zone runs into a mask, a label or the panel margin: its edge is hidden, so no creep
                 # is measured here; the zone seen so far still widens the corridor left out of the rating
                 n_hidden += int(counts[si])
-                reach_neg, reach_pos = max(reach_neg, -float(offs[a_i])), max(reach_pos, float(offs[b_i]))
+                reach_used[si] = (-float(offs[a_i]), float(offs[b_i]))
                 continue
             # sub-sample edges: where the profile crosses one half at the run's ends
             lo_i = a_i - (prof[a_i] - 0.5) / max(prof[a_i] - prof[a_i - 1], 1e-9)
             hi_i = b_i + (prof[b_i] - 0.5) / max(prof[b_i] - prof[b_i + 1], 1e-9)
             left_edge, right_edge = offs[0] + lo_i * step, offs[0] + hi_i * step
-            reach_neg, reach_pos = max(reach_neg, -float(left_edge)), max(reach_pos, float(right_edge))
+            reach_used[si] = (-float(left_edge), float(right_edge))
             if not counts[si]:
                 continue  # an end station: the corridor only
             # scribe centre: a filled gap (uncorroded cut), else the bare-steel core, else the line
@@ -615,12 +692,13 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
         mine = [x["zone_width_mm"] for x in stations if x["line"] == li]
         if mine and length < SCRIBE_MIN_ELONGATION * float(np.mean(mine)):
             broad.append(li)  # a broad patch (glare, a stain) along a line, not a thin band
-        sides.append((max(reach_neg, w / 2) + 1.0, max(reach_pos, w / 2) + 1.0))
+        reach[use], shared[use] = reach_used, shared_used
+        profiles.append(_corridor_profile(t_all, reach, length, w, shared))
     if broad:
         keep = [i for i in range(len(lines)) if i not in broad]
         renum = {old: new for new, old in enumerate(keep)}
         stations = [dict(x, line=renum[x["line"]]) for x in stations if x["line"] in renum]
-        lines, sides = [lines[i] for i in keep], [sides[i] for i in keep]
+        lines, profiles = [lines[i] for i in keep], [profiles[i] for i in keep]
         what = f"{len(broad)} broad patch(es) along a line, not a thin band"
         if want and len(lines) != want:
             return ScribeResult(note=f"expected {'one scribe line' if want == 1 else 'an X scribe'}, found "
@@ -634,5 +712,6 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
     if n_cross:
         note = (f"{note}; " if note else "") + (f"{n_cross} station(s) near the crossing left out: the corroded "
                                                 "zone runs into the other arm's")
+    sides = [(max(pr["neg_mm"]), max(pr["pos_mm"])) for pr in profiles]
     return ScribeResult([(np.asarray(a).tolist(), np.asarray(b).tolist()) for a, b in lines], stations,
-                        [max(sd) for sd in sides], note=note, corridor_sides_mm=sides)
+                        [max(sd) for sd in sides], note=note, corridor_sides_mm=sides, corridor_profiles=profiles)
