@@ -90,8 +90,9 @@ COLOUR_MODEL_REL_UNC = 0.10
 #: either).  The large sites take the cone's fraction, which does not assume the rust's brightness
 #: (:data:`CONE_MIN_SITE_MM2`) but leans on the coating's faint share of each pixel: on synthetic trays
 #: (rust painted in colours of its own, not the unmixing's) the dark coating's spots, general rust and
-#: streaks read 0.83 to 1.22 of the truth at 4.3 to 10.4 px/mm (seventh session; with the segment's
-#: fraction alone spots and general read 0.75 to 0.89), grey and white 0.89 to 1.07.
+#: streaks read 0.86 to 1.11 of the truth at 4.3 to 10.4 px/mm, JPEG q92 4:2:0 and 4:4:4, seeds 4 and 5
+#: (twelfth session, with the pairs of rust colours; 0.83 to 1.22 in the seventh, and with the segment's
+#: fraction alone spots and general read 0.75 to 0.89), white, grey and green 0.98 to 1.11.
 COLOUR_MODEL_REL_UNC_DARK = 0.20
 
 #: On a coating darker than the rust, sites larger than this (rust area, mm2) sum the cone's fraction
@@ -106,6 +107,9 @@ COLOUR_MODEL_REL_UNC_DARK = 0.20
 #: * general: 0.76 to 0.89 -> 0.92 to 1.01;
 #: * translucent streaks: 0.84 to 1.11 -> 1.10 to 1.22 (within 0.1 percentage points of the truth);
 #: * pinpoint: unchanged (its sites are smaller).
+#:
+#: With the pairs of neighbouring rust colours (``_best_rust``, ``_cone_fraction_along``; twelfth session,
+#: same scenes): spots 0.86 to 0.96, general 0.92 to 1.00, streaks 1.04 to 1.11.
 #:
 #: On white, grey and green coatings the cone read 1.02 to 1.15 x where the segment reads 0.88 to 1.07 x,
 #: so it is used on dark coatings only.
