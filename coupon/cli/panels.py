@@ -463,6 +463,7 @@ def _rate_quad(path: Path, sha256: str, pixels: np.ndarray, q, qr_hit, settings:
         "corners_xy": q.corners_xy.tolist(), "panel_size_mm": list(panel.size_mm),
         "coating_srgb": res["coating_srgb"], "coating_darker_than_rust": res["coating_darker_than_rust"],
         "rust_pixel_count_pct": res["rust_pixel_count_pct"], "glare_corrected_mm2": res["glare_corrected_mm2"],
+        "rust_area_pct_unc_glare": res["rust_area_pct_unc_glare"],
         "scribe_lines_mm": scribe.lines, "creep_stations": scribe.stations, "scribe_note": scribe.note,
         # how far the corridor left out of the rating reaches on either side of each line (mm; against and
         # along the normal (-u_y, u_x) of the line's direction u)

@@ -45,6 +45,12 @@ _BLOCK_MM = 2.0
 GLARE_LIGHT_BLUR_BLOCKS = 0.5
 
 
+#: Relative uncertainty of the estimated glare light (coupon's estimate): beneath rust the light is filled
+#: in from the clean coating around it, and on the synthetic trays its peak came out 5 to 8 % low where
+#: rust holes were filled in (eleventh session).  ``rate_panel`` rates a panel with glare again with the
+#: light taken off at 1 -/+ this share and adds half the spread of the rust area to its uncertainty.
+GLARE_LIGHT_REL_UNC = 0.10
+
 def glare_mask(model: ColourModel, valid: np.ndarray, px_per_mm: float, light_too: bool = False):
     """Pixels of ``valid`` under glare (bool, the panel's shape); all False when there is none.
 
