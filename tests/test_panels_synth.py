@@ -696,6 +696,7 @@ def test_a_spot_cluster_past_the_scribe_end_does_not_lengthen_the_line():
     ("#" * 100 + "..." + "#" * 20, (0, 122)),    # a long end piece behind a gap stays
     ("#" * 100 + "...#.#" + "#" * 14, (0, 119)),  # so do pieces parted by one cell, 17 cells in all
     ("#####..." + "#" * 100, (8, 107)),          # the same at the start
+    ("#####.###..." + "#" * 100, (12, 111)),     # a group of pieces at the start
 ])
 def test_end_pieces_behind_a_gap(pattern, kept):
     from coupon.segment.panels.scribe import _longest_run

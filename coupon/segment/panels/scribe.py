@@ -364,9 +364,9 @@ def _longest_run(cells: np.ndarray, px_per_mm: float, share: float = 0.5, max_ga
     join across gaps of up to ``max_gap`` cells (a stretch of cut without corrosion), but a short
     piece (under :data:`END_PIECE_MM` or :data:`END_PIECE_SHARE` of the chain) at either end of a chain,
     behind a gap of 2 cells or more, is dropped: that is a rust spot just past the scribe end, and it would
-    carry the scribe zone (left out of the rust rating) over itself.  Pieces at the end parted by gaps of
-    one cell count as one piece (a cluster of spots 9 mm long behind a gap of 3 cells, in pieces of 3 and
-    5 cells, carried a line 12 mm past its end: random-tray study, seed 6 scene 12).  ``bridge`` (per cell, optional): cells that cannot be
+    carry the scribe zone (left out of the rust rating) over itself.  Pieces at the end parted by gaps
+    of one cell count as one piece (a cluster of spots 9 mm long behind a gap of 3 cells, in pieces of 3
+    and 5 cells, carried a line 12 mm past its end: random-tray study, seed 6 scene 12).  ``bridge`` (per cell, optional): cells that cannot be
     seen (masked, under glare); a gap of such cells joins its pieces whatever its length.
     """
     occ = np.bincount(cells) >= share * px_per_mm
@@ -498,8 +498,10 @@ def _corridor_profile(t_mm: np.ndarray, reach: np.ndarray, length_mm: float, wid
     zones merge, or where no corroded band shows) takes the reach interpolated along the line between the
     nearest stations that saw the zone's own edge on that side: ``shared`` marks a reach cut at the bisector
     with the other arm (with heavy creep every station near the crossing has one, and interpolating those
-    left the merged zone's outer part rated as rust).  The first and last stations' values hold to 2 mm
-    past the line's ends (square ends).
+    left the merged zone's outer part rated as rust).  A side with no reach seen at all keeps the cut's half
+    width (as the uniform corridor did): a zone past the search limit all along is not one the tool can
+    bound, and leaving 25 mm out would hide the rust of most of the panel.  The first and last stations'
+    values hold to 2 mm past the line's ends (square ends).
     """
     r = np.array(reach, float).reshape(-1, 2)
     t = np.asarray(t_mm, float)
@@ -657,13 +659,13 @@ def measure_scribe(model: ColourModel, px_per_mm: float, size_mm: tuple[float, f
                 if f_neg.size and f_neg[-1] >= a_i - near:
                     reach_used[si, 0] = -float(offs[max(a_i, f_neg[-1] + 1)])
                     shared_used[si, 0] = True
-                elif a_i > 0:
-                    reach_used[si, 0] = -float(offs[a_i])
+                else:  # the free side's own edge, or the search limit (inf, as below)
+                    reach_used[si, 0] = -float(offs[a_i]) if a_i > 0 else np.inf
                 if f_pos.size and f_pos[0] <= b_i + near:
                     reach_used[si, 1] = float(offs[min(b_i, f_pos[0] - 1)])
                     shared_used[si, 1] = True
-                elif b_i < last:
-                    reach_used[si, 1] = float(offs[b_i])
+                else:
+                    reach_used[si, 1] = float(offs[b_i]) if b_i < last else np.inf
                 continue
             if a_i == 0 or b_i == last:
                 # the zone reaches the search limit: not measurable here; on that side the corridor takes the
