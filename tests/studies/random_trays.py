@@ -6,7 +6,7 @@ dirt, glare), 2 or 3 columns, a panel resolution of 6 to 10 px/mm, camera tilts 
 to 4, a light gradient up to 30 %, JPEG q85 to q95 with 4:2:0 or 4:4:4 chroma.  Checks (issue 3): every
 panel found in its tray position; rust area within max(0.1 percentage points, 15 %) of the painted
 truth; D610 grade within one class; a scribe found exactly where one is painted; creep mean within
-0.3 mm.  Dense pinpoint rust on grey and dark coatings in 4:2:0 JPEGs is marked as the known fault
+0.3 mm.  Dense pinpoint rust on grey, green and dark coatings in 4:2:0 JPEGs is marked as the known fault
 (DEVELOPERS.md).
 
 Run by hand: ``python tests/studies/random_trays.py --seed 2 --scenes 17`` (about 10 s a scene).
@@ -71,7 +71,8 @@ def check_scene(specs, seed, st) -> tuple[list[str], int]:
             continue
         res = rate_panel(rectify_panel(img, q.corners_xy, (75, 150)), PanelSettings())
         tr = truth_rust(p, 5.0)["rust_area_pct"]
-        known = sp.rust == ("pinpoint",) and sp.coating in ("grey", "dark") and st.jpeg_chroma == "4:2:0"
+        # green too: 1.16 to 1.18 x in 4:2:0 against 1.06 in 4:4:4 at 7.5 px/mm (twelfth session)
+        known = sp.rust == ("pinpoint",) and sp.coating in ("grey", "green", "dark") and st.jpeg_chroma == "4:2:0"
         if abs(res["rust_area_pct"] - tr) > max(0.1, 0.15 * tr):
             out.append(f"{name}: rust {res['rust_area_pct']:.3f} % for {tr:.3f} %" + (" (known fault)" if known else ""))
         if abs(int(res["rust_grade"]) - int(rust_grade(tr))) > 1:
