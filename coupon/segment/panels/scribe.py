@@ -388,20 +388,18 @@ def _longest_run(cells: np.ndarray, px_per_mm: float, share: float = 0.5, max_ga
     best = (0, 0)
     for ch in chains:
         short = max(END_PIECE_MM, END_PIECE_SHARE * (ch[-1][1] - ch[0][0] + 1))
-        while len(ch) > 1:  # the last group of pieces (joined across gaps of one cell) behind a gap of 2 or more
-            g = len(ch) - 1
-            while g > 0 and ch[g][0] - ch[g - 1][1] - 1 < 2:
-                g -= 1
-            if g == 0 or ch[-1][1] - ch[g][0] + 1 >= short:
-                break
-            ch = ch[:g]
-        while len(ch) > 1:  # the same at the start
-            g = 0
-            while g < len(ch) - 1 and ch[g + 1][0] - ch[g][1] - 1 < 2:
-                g += 1
-            if g == len(ch) - 1 or ch[g][1] - ch[0][0] + 1 >= short:
-                break
-            ch = ch[g + 1:]
+        # groups of pieces parted by gaps of one cell; groups are parted by gaps of 2 cells or more
+        groups = [[ch[0]]]
+        for pc in ch[1:]:
+            if pc[0] - groups[-1][-1][1] - 1 < 2:
+                groups[-1].append(pc)
+            else:
+                groups.append([pc])
+        while len(groups) > 1 and groups[-1][-1][1] - groups[-1][0][0] + 1 < short:
+            groups.pop()
+        while len(groups) > 1 and groups[0][-1][1] - groups[0][0][0] + 1 < short:
+            groups.pop(0)
+        ch = [pc for g in groups for pc in g]
         if ch[-1][1] - ch[0][0] > best[1] - best[0]:
             best = (int(ch[0][0]), int(ch[-1][1]))
     return best
