@@ -327,8 +327,8 @@ def truth_rust(panel_truth: dict, edge_mm: float, scribe_margin_mm: float = 1.0)
     The rated area is the panel minus the edge band, the QR label box (plus 2 mm)
     and the scribe corridors: on each side, at each 1 mm station, the scribe half width + the painted creep
     of that side (at least its median over the line), the larger of it and its two neighbours' (a station
-    stands for 1 mm of line), + margin;
-    linear between stations, held to 2 mm past the scribe's ends (square ends).
+    stands for 1 mm of line), + margin; linear between stations, held to 2 mm past the scribe's ends
+    (square ends).
     """
     cover = panel_truth["_rust_cover"]
     s = panel_truth["plane_px_per_mm"]
